@@ -1,0 +1,263 @@
+"""The one-file checkpoint: safetensors tensors plus string metadata (DESIGN.md).
+
+Loading validates everything in one place and raises `CheckpointError` with one sentence
+naming the file and the problem. Nothing is ever unpickled.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import struct
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+from safetensors import safe_open
+from safetensors.torch import save_file
+from tokenizers import Tokenizer
+
+from core.errors import CheckpointError
+from core.model import ARCHITECTURES, ChunkMLP, ChunkMLPConfig, build_model
+from core.tokenizer import token_byte_lengths
+
+FORMAT_VERSION = 1
+KEY_FORMAT = "chunkscope.format"
+KEY_CONFIG = "chunkscope.config"
+KEY_TOKENIZER = "chunkscope.tokenizer"
+KEY_CARD = "chunkscope.card"
+REQUIRED_KEYS = (KEY_FORMAT, KEY_CONFIG, KEY_TOKENIZER)
+ALLOWED_DTYPES = {"F32": torch.float32, "F16": torch.float16, "BF16": torch.bfloat16}
+SAVE_DTYPES = {"float32": torch.float32, "float16": torch.float16, "bfloat16": torch.bfloat16}
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+@dataclass
+class Codec:
+    """An encoder + decoder + tokenizer, seen through the codec contract of DESIGN.md."""
+
+    model: ChunkMLP
+    tokenizer: Tokenizer
+    card: dict[str, Any] = field(default_factory=dict)
+    sha256: str = ""
+    path: str = ""
+
+    def __post_init__(self) -> None:
+        self.model.eval()
+        self.token_byte_lengths = token_byte_lengths(self.tokenizer)
+
+    @property
+    def config(self) -> ChunkMLPConfig:
+        return self.model.config
+
+    @property
+    def chunk_size(self) -> int:
+        return self.config.chunk_size
+
+    @property
+    def latent_dim(self) -> int:
+        return self.config.latent_dim
+
+    @property
+    def vocab_size(self) -> int:
+        return self.config.vocab_size
+
+    @property
+    def pad_id(self) -> int:
+        return self.config.pad_id
+
+    @property
+    def variational(self) -> bool:
+        return self.config.variational
+
+    @property
+    def name(self) -> str:
+        return Path(self.path).stem if self.path else "unsaved"
+
+    @property
+    def num_parameters(self) -> int:
+        return sum(p.numel() for p in self.model.parameters())
+
+    @torch.inference_mode()
+    def encode(self, ids: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor | None]:
+        return self.model.encode(ids)
+
+    @torch.inference_mode()
+    def decode(self, z: torch.Tensor) -> torch.Tensor:
+        return self.model.decode(z)
+
+    def describe(self) -> dict[str, Any]:
+        return {
+            "name": self.name,
+            "path": self.path,
+            "sha256": self.sha256,
+            "config": self.config.to_dict(),
+            "parameters": self.num_parameters,
+            "card": self.card,
+        }
+
+
+def save_codec(codec: Codec, path: str | os.PathLike, dtype: str = "float32") -> str:
+    """Write a codec to one safetensors file atomically; returns the file's sha256."""
+    if dtype not in SAVE_DTYPES:
+        raise ValueError(f"dtype must be one of {sorted(SAVE_DTYPES)}, not {dtype!r}")
+    path = Path(path)
+    tensors = {k: v.detach().to(SAVE_DTYPES[dtype]).contiguous() for k, v in codec.model.state_dict().items()}
+    metadata = {
+        KEY_FORMAT: str(FORMAT_VERSION),
+        KEY_CONFIG: json.dumps(codec.config.to_dict(), sort_keys=True),
+        KEY_TOKENIZER: codec.tokenizer.to_str(),
+    }
+    if codec.card:
+        metadata[KEY_CARD] = json.dumps(codec.card, sort_keys=True)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    os.close(fd)
+    try:
+        save_file(tensors, tmp, metadata=metadata)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    codec.path = str(path)
+    codec.sha256 = file_sha256(path)
+    return codec.sha256
+
+
+def _read_header(path: Path) -> dict:
+    """Check the safetensors framing by hand so every failure gets a plain sentence."""
+    name = path.name
+    try:
+        size = path.stat().st_size
+        with open(path, "rb") as handle:
+            head = handle.read(8)
+            if len(head) < 8:
+                raise CheckpointError(f"{name} is not a safetensors file (it is only {size} bytes long).")
+            (header_len,) = struct.unpack("<Q", head)
+            if header_len > 100_000_000:
+                raise CheckpointError(f"{name} is not a safetensors file (its first bytes are not a header length).")
+            if 8 + header_len > size:
+                raise CheckpointError(f"{name} is truncated: its header says {header_len} bytes but the file ends first.")
+            raw = handle.read(header_len)
+    except OSError as exc:
+        raise CheckpointError(f"{name} cannot be read: {exc.strerror or exc}.") from exc
+    try:
+        header = json.loads(raw.decode("utf-8"))
+        if not isinstance(header, dict):
+            raise ValueError
+    except (UnicodeDecodeError, ValueError):
+        raise CheckpointError(f"{name} is not a safetensors file (its header is not JSON).") from None
+    data_len = size - 8 - header_len
+    for key, info in header.items():
+        if key == "__metadata__":
+            continue
+        try:
+            start, end = info["data_offsets"]
+        except (TypeError, KeyError, ValueError):
+            raise CheckpointError(f"{name} is not a safetensors file (tensor {key!r} has no data offsets).") from None
+        if end > data_len:
+            raise CheckpointError(f"{name} is truncated: tensor {key!r} runs past the end of the file.")
+    return header
+
+
+def load_codec(path: str | os.PathLike) -> Codec:
+    """Read and validate one checkpoint file; raise CheckpointError naming any problem."""
+    path = Path(path)
+    name = path.name
+    if not path.is_file():
+        raise CheckpointError(f"{name} does not exist or is not a file.")
+    header = _read_header(path)
+    metadata = header.get("__metadata__") or {}
+    for key in REQUIRED_KEYS:
+        if key not in metadata:
+            raise CheckpointError(f"{name} is not a chunkscope checkpoint: the metadata key {key!r} is missing.")
+    try:
+        version = int(metadata[KEY_FORMAT])
+    except ValueError:
+        raise CheckpointError(f"{name} has an unreadable format version {metadata[KEY_FORMAT]!r}.") from None
+    if version > FORMAT_VERSION:
+        raise CheckpointError(
+            f"{name} uses checkpoint format {version}, newer than this tool reads (up to {FORMAT_VERSION}); update chunkscope."
+        )
+    try:
+        raw_config = json.loads(metadata[KEY_CONFIG])
+        if not isinstance(raw_config, dict):
+            raise ValueError
+    except ValueError:
+        raise CheckpointError(f"{name} has a {KEY_CONFIG} entry that is not a JSON object.") from None
+    arch = raw_config.get("arch")
+    if arch not in ARCHITECTURES:
+        raise CheckpointError(f"{name} uses an unknown architecture {arch!r} (this tool knows {', '.join(ARCHITECTURES)}).")
+    try:
+        config = ChunkMLPConfig.from_dict(raw_config)
+        for key in ("chunk_size", "vocab_size", "latent_dim", "embed_dim", "width", "depth", "pad_id"):
+            value = getattr(config, key)
+            if not isinstance(value, int) or isinstance(value, bool) or value < (0 if key in ("pad_id", "depth") else 1):
+                raise ValueError(f"{key} = {value!r}")
+        if not isinstance(config.variational, bool):
+            raise ValueError(f"variational = {config.variational!r}")
+        if config.pad_id >= config.vocab_size:
+            raise ValueError(f"pad_id {config.pad_id} is outside the vocabulary")
+    except KeyError as exc:
+        raise CheckpointError(f"{name} has a config without the size(s) {exc.args[0]}.") from None
+    except (TypeError, ValueError) as exc:
+        raise CheckpointError(f"{name} has an invalid config: {exc}.") from None
+    try:
+        tokenizer = Tokenizer.from_str(metadata[KEY_TOKENIZER])
+    except Exception:
+        raise CheckpointError(f"{name} has a {KEY_TOKENIZER} entry the tokenizers library cannot read.") from None
+    if tokenizer.get_vocab_size() != config.vocab_size:
+        raise CheckpointError(
+            f"{name} has a tokenizer of {tokenizer.get_vocab_size()} tokens but a model vocabulary of {config.vocab_size}."
+        )
+    card: dict[str, Any] = {}
+    if KEY_CARD in metadata:
+        try:
+            card = json.loads(metadata[KEY_CARD])
+            if not isinstance(card, dict):
+                raise ValueError
+        except ValueError:
+            raise CheckpointError(f"{name} has a {KEY_CARD} entry that is not a JSON object.") from None
+
+    model = build_model(config)
+    expected = model.state_dict()
+    for key, info in header.items():
+        if key == "__metadata__":
+            continue
+        if key not in expected:
+            raise CheckpointError(f"{name} holds a tensor {key!r} that the {arch} architecture does not have.")
+        if info.get("dtype") not in ALLOWED_DTYPES:
+            raise CheckpointError(f"{name} stores tensor {key!r} as {info.get('dtype')}; only float32, float16 and bfloat16 are read.")
+    state = {}
+    try:
+        with safe_open(str(path), framework="pt") as handle:
+            stored = set(handle.keys())
+            for key, want in expected.items():
+                if key not in stored:
+                    raise CheckpointError(f"{name} is missing the tensor {key!r}.")
+                tensor = handle.get_tensor(key)
+                if tuple(tensor.shape) != tuple(want.shape):
+                    raise CheckpointError(
+                        f"{name} has tensor {key!r} of shape {tuple(tensor.shape)}, but its config needs {tuple(want.shape)}."
+                    )
+                tensor = tensor.to(torch.float32)
+                if not torch.isfinite(tensor).all():
+                    raise CheckpointError(f"{name} has non-finite values (NaN or infinity) in tensor {key!r}.")
+                state[key] = tensor
+    except CheckpointError:
+        raise
+    except Exception as exc:
+        raise CheckpointError(f"{name} could not be read as safetensors: {exc}.") from None
+    model.load_state_dict(state)
+    return Codec(model=model, tokenizer=tokenizer, card=card, sha256=file_sha256(path), path=str(path))

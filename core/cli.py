@@ -1,0 +1,237 @@
+"""The `chunkscope` command line. With no subcommand it opens the workbench."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from pathlib import Path
+
+import core
+from core.errors import ChunkscopeError, SweepCancelled
+
+
+class TerminalProgress:
+    """A one-line progress bar on stderr (plain periodic lines when stderr is not a terminal)."""
+
+    def __init__(self, label: str, stream=None, width: int = 30):
+        self.label = label
+        self.stream = stream or sys.stderr
+        self.width = width
+        self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
+        self.started = time.perf_counter()
+        self.last_shown = -1.0
+
+    def __call__(self, done: int, total: int) -> None:
+        fraction = done / total if total else 1.0
+        now = time.perf_counter()
+        if done < total and now - self.last_shown < (0.1 if self.tty else 5.0):
+            return
+        self.last_shown = now
+        elapsed = now - self.started
+        eta = elapsed / fraction - elapsed if fraction > 0 else 0.0
+        filled = int(self.width * fraction)
+        bar = "#" * filled + "." * (self.width - filled)
+        line = f"{self.label} [{bar}] {fraction * 100:5.1f}%  {elapsed:5.1f}s elapsed, {eta:5.1f}s left"
+        if self.tty:
+            self.stream.write("\r" + line + ("\n" if done >= total else ""))
+        else:
+            self.stream.write(line + "\n")
+        self.stream.flush()
+
+
+def _load_text_arg(path: str | None) -> tuple[str, str]:
+    from core.text import DEMO_TEXT_PATH, load_text
+
+    if path is None:
+        return load_text(DEMO_TEXT_PATH), f"demo text ({DEMO_TEXT_PATH.name})"
+    return load_text(path), str(path)
+
+
+def _fmt(value) -> str:
+    return "—" if value is None else f"{value:.4g}"
+
+
+def cmd_info(args: argparse.Namespace) -> int:
+    from core.checkpoint import load_codec
+    from core.health import latent_health
+    from core.text import chunk_text
+
+    codec = load_codec(args.checkpoint)
+    text, source = _load_text_arg(args.text)
+    chunks = chunk_text(text, codec, source)
+    health = latent_health(codec, chunks)
+    if args.json:
+        print(json.dumps({"codec": codec.describe(), "health": health.summary(), "text": source}, indent=1))
+        return 0
+    c = codec.config
+    print(f"{codec.name}  ({Path(codec.path).name})")
+    print(f"  architecture   {c.arch}, {'variational' if c.variational else 'plain'} autoencoder")
+    print(f"  sizes          chunk K={c.chunk_size}, latent D={c.latent_dim}, vocab V={c.vocab_size}, "
+          f"embed {c.embed_dim}, width {c.width}, depth {c.depth}, pad id {c.pad_id}")
+    print(f"  parameters     {codec.num_parameters:,}")
+    print(f"  sha256         {codec.sha256}")
+    print(f"latent health on {source} ({chunks.num_tokens:,} tokens, {chunks.num_chunks:,} chunks)")
+    s = health.summary()
+    print(f"  latent RMS     {s['latent_rms']:.4g}")
+    print(f"  active dims    {s['active_dims']} of {c.latent_dim} (variance of the mean > {s['active_threshold']})")
+    if "kl_total" in s:
+        print(f"  KL to N(0,I)   {s['kl_total']:.4g} nats per chunk; mean posterior std {s['posterior_std_mean']:.4g}")
+    print(f"  nearest-neighbour half-distance  median {_fmt(s['nn_half_distance_median'])}, "
+          f"1st percentile {_fmt(s['nn_half_distance_p01'])} over {s['nn_chunks']:,} distinct chunks"
+          + (" (sampled)" if s["nn_sampled"] else ""))
+    if codec.card:
+        print("card")
+        for line in json.dumps(codec.card, indent=2, ensure_ascii=False).splitlines()[1:-1]:
+            print(line)
+    else:
+        print("card           (none)")
+    return 0
+
+
+def _settings_from_args(args: argparse.Namespace):
+    from core.sweep import SweepSettings, parse_sigmas
+
+    sigmas = parse_sigmas(args.sigmas) if args.sigmas else SweepSettings().sigmas
+    return SweepSettings(sigmas=sigmas, repeats=args.repeats, noise=args.noise, seed=args.seed, batch_chunks=args.batch)
+
+
+def print_tolerance_table(results, stream=None) -> None:
+    stream = stream or sys.stdout
+    noise = results[0].settings.noise
+    unit = "relative σ" if noise == "data-scale" else "absolute σ"
+    header = f"{'checkpoint':<22} {'acc@σ=0':>9} {'99.9 %':>10} {'99 %':>10} {'90 %':>10} {'latent RMS':>11}"
+    print(f"tolerance ({noise} noise, {unit}; '>' = never dropped on the grid)", file=stream)
+    print(header, file=stream)
+    for r in results:
+        acc0 = r.curves[0].token_accuracy if r.sigmas[0] == 0 else float("nan")
+        row = [t.label() for t in r.tolerances]
+        print(f"{r.codec_name[:22]:<22} {acc0 * 100:8.3f}% {row[0]:>10} {row[1]:>10} {row[2]:>10} {r.latent_rms:>11.4g}", file=stream)
+    if noise != "data-scale":
+        print("absolute σ depends on each codec's latent scale: compare with the latent RMS, or sweep with --noise data-scale.", file=stream)
+
+
+def cmd_sweep(args: argparse.Namespace) -> int:
+    from core.checkpoint import load_codec
+    from core.sweep import run_sweep
+    from core.text import chunk_text
+
+    settings = _settings_from_args(args)
+    text, source = _load_text_arg(args.text)
+    codecs = [load_codec(p) for p in args.checkpoints]
+    names = [c.name for c in codecs]
+    if len(set(names)) != len(names):
+        raise ChunkscopeError("two checkpoints share a file name, so their output folders would collide; rename one.")
+    out = Path(args.out)
+    targets = [out / name for name in names]
+    existing = [str(t) for t in targets if t.exists()]
+    if existing and not args.force:
+        raise ChunkscopeError(f"{', '.join(existing)} already exist(s); pass --force to replace, or choose another --out.")
+    for codec in codecs:
+        settings.validated(codec)
+    results = []
+    for codec, target in zip(codecs, targets):
+        chunks = chunk_text(text, codec, source)
+        progress = TerminalProgress(f"{codec.name[:16]:<16}") if not args.quiet else None
+        result = run_sweep(codec, chunks, settings, progress=progress, text_source=source)
+        result.write(target, force=args.force)
+        results.append(result)
+        print(f"wrote {target}/ ({result.decoded_chunks:,} decoded chunks in {result.elapsed_s:.1f}s)", file=sys.stderr)
+    print_tolerance_table(results)
+    return 0
+
+
+def cmd_train(args: argparse.Namespace) -> int:
+    from core import train
+
+    return train.run_from_args(args) or 0
+
+
+def add_sweep_arguments(p: argparse.ArgumentParser) -> None:
+    from core.latent import NOISE_MODELS
+    from core.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED
+
+    p.add_argument("--text", help="UTF-8 text file to evaluate on (default: the bundled demo text)")
+    p.add_argument("--sigmas", help="grid as start:stop:step or a comma list (default: 0 and 24 steps from 0.01 to 2, x1.26 each)")
+    p.add_argument("--repeats", type=int, default=DEFAULT_REPEATS, help=f"noise draws per chunk and sigma (default {DEFAULT_REPEATS})")
+    p.add_argument("--noise", choices=NOISE_MODELS, default=DEFAULT_NOISE, help=f"noise model (default {DEFAULT_NOISE})")
+    p.add_argument("--seed", type=int, default=DEFAULT_SEED, help=f"noise seed (default {DEFAULT_SEED})")
+    p.add_argument("--batch", type=int, default=512, help="chunks decoded per batch (rounded to a multiple of 256)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="chunkscope",
+        description="Measure how much latent noise a chunk autoencoder can take. With no command, opens the workbench.",
+    )
+    parser.add_argument("--version", action="version", version=f"chunkscope {core.__version__}")
+    parser.add_argument("--screenshot", metavar="PATH", help="open the workbench offscreen, save a PNG of it to PATH and exit")
+    parser.add_argument("--view", metavar="NAME", help="with --screenshot: the view to show")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("info", help="describe a checkpoint and its latent health", description="Architecture, sizes, parameter count, sha256, card and latent health of one checkpoint.")
+    p.add_argument("checkpoint")
+    p.add_argument("--text", help="UTF-8 text file for the latent health (default: the bundled demo text)")
+    p.add_argument("--json", action="store_true", help="print JSON instead of text")
+    p.set_defaults(func=cmd_info)
+
+    p = sub.add_parser("sweep", help="sweep checkpoints over a sigma grid", description="Encode a text once per checkpoint, then perturb, decode and score it at every sigma; write DIR/<checkpoint>/sweep.json, curves.csv, tokens.csv.")
+    p.add_argument("checkpoints", nargs="+", metavar="CKPT")
+    add_sweep_arguments(p)
+    p.add_argument("--out", default="results", help="output folder (default: results)")
+    p.add_argument("--force", action="store_true", help="replace existing output folders")
+    p.set_defaults(func=cmd_sweep)
+
+    try:
+        from core import train
+    except ImportError:
+        train = None
+    if train is not None and hasattr(train, "add_arguments"):
+        p = sub.add_parser("train", help="train a sample model from its recipe", description="Rebuild the sample models from the Python standard library's docstrings and comments.")
+        train.add_arguments(p)
+        p.set_defaults(func=cmd_train)
+
+    for extra in _extra_commands():
+        extra(sub)
+    return parser
+
+
+def _extra_commands():
+    try:
+        from core import compare
+    except ImportError:
+        return []
+    return [compare.add_commands]
+
+
+def open_workbench(args: argparse.Namespace) -> int:
+    try:
+        from app.main import run_workbench
+    except ImportError as exc:
+        print(f"chunkscope: the workbench cannot start ({exc}).", file=sys.stderr)
+        return 2
+    return run_workbench(screenshot=args.screenshot, view=args.view)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        return open_workbench(args)
+    try:
+        return int(args.func(args) or 0)
+    except ChunkscopeError as exc:
+        print(f"chunkscope: {exc}", file=sys.stderr)
+        return 2
+    except FileExistsError as exc:
+        print(f"chunkscope: {exc}", file=sys.stderr)
+        return 2
+    except (SweepCancelled, KeyboardInterrupt):
+        print("\nchunkscope: stopped; nothing was written.", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,96 @@
+"""Latent health, with no noise: KL per dimension, active dimensions, posterior std,
+and each chunk's half-distance to its nearest distinct neighbour."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from core.latent import Encoded, encode_chunks
+from core.text import Chunks
+
+ACTIVE_THRESHOLD = 0.01  # variance of the mean over chunks; common practice (importance-weighted AE literature)
+
+
+@dataclass
+class LatentHealth:
+    latent_dim: int
+    num_chunks: int
+    latent_rms: float
+    rms_per_dim: np.ndarray  # [D]
+    mean_variance_per_dim: np.ndarray  # [D] variance of the posterior mean over chunks
+    active_dims: int
+    kl_per_dim: np.ndarray | None  # [D] mean KL(q(z_j|x) || N(0,1)) over chunks; variational only
+    std_per_dim: np.ndarray | None  # [D] mean posterior std over chunks; variational only
+    nn_half_distance: np.ndarray  # [M] per distinct chunk (M <= max_chunks)
+    nn_sampled: bool
+
+    def summary(self) -> dict:
+        d = {
+            "latent_dim": self.latent_dim,
+            "chunks": self.num_chunks,
+            "latent_rms": self.latent_rms,
+            "active_dims": self.active_dims,
+            "active_threshold": ACTIVE_THRESHOLD,
+            "nn_half_distance_median": float(np.median(self.nn_half_distance)) if len(self.nn_half_distance) else None,
+            "nn_half_distance_p01": float(np.quantile(self.nn_half_distance, 0.01)) if len(self.nn_half_distance) else None,
+            "nn_chunks": int(len(self.nn_half_distance)),
+            "nn_sampled": self.nn_sampled,
+        }
+        if self.kl_per_dim is not None:
+            d["kl_total"] = float(self.kl_per_dim.sum())
+            d["posterior_std_mean"] = float(self.std_per_dim.mean())
+        return d
+
+
+def kl_to_standard_normal(mean: torch.Tensor, std: torch.Tensor) -> torch.Tensor:
+    """KL(N(mean, std²) || N(0, 1)) elementwise."""
+    return 0.5 * (mean.square() + std.square() - 1.0) - std.log()
+
+
+def nearest_distinct_half_distance(means: torch.Tensor, block: int = 2048) -> torch.Tensor:
+    """Half the distance from each row to its nearest other row (rows stand for distinct chunks)."""
+    n = means.shape[0]
+    out = torch.empty(n)
+    for start in range(0, n, block):
+        d = torch.cdist(means[start : start + block].double(), means.double())
+        rows = torch.arange(d.shape[0])
+        d[rows, rows + start] = float("inf")
+        out[start : start + block] = d.min(1).values.float() / 2
+    return out
+
+
+def latent_health(
+    codec, chunks: Chunks, encoded: Encoded | None = None, max_chunks: int = 20_000, seed: int = 0, should_stop=None
+) -> LatentHealth:
+    if encoded is None:
+        encoded = encode_chunks(codec, chunks, should_stop=should_stop)
+    mean = encoded.mean
+    variance = mean.var(0, unbiased=False) if mean.shape[0] > 1 else torch.zeros(mean.shape[1])
+    kl = std = None
+    if encoded.std is not None:
+        kl = kl_to_standard_normal(mean, encoded.std).mean(0).numpy()
+        std = encoded.std.mean(0).numpy()
+    # distinct chunks only: identical token chunks have identical means
+    ids = chunks.ids().numpy()
+    _, first = np.unique(ids, axis=0, return_index=True)
+    first = np.sort(first)
+    sampled = len(first) > max_chunks
+    if sampled:
+        first = np.sort(np.random.default_rng(seed).choice(first, size=max_chunks, replace=False))
+    half = nearest_distinct_half_distance(mean[torch.from_numpy(first)]) if len(first) > 1 else torch.zeros(0)
+    half = half[torch.isfinite(half)]
+    return LatentHealth(
+        latent_dim=codec.latent_dim,
+        num_chunks=encoded.num_chunks,
+        latent_rms=encoded.latent_rms,
+        rms_per_dim=encoded.rms_per_dim.numpy(),
+        mean_variance_per_dim=variance.numpy(),
+        active_dims=int((variance > ACTIVE_THRESHOLD).sum()),
+        kl_per_dim=kl,
+        std_per_dim=std,
+        nn_half_distance=half.numpy(),
+        nn_sampled=sampled,
+    )

@@ -1,0 +1,464 @@
+"""The training recipe for chunk-mlp codecs, and the recipes of the shipped sample models.
+
+Data: the standard library's docstrings and comments (`core.corpus`), tokenized with one
+byte-level BPE trained once on the training split, so every sample model shares the
+same tokenizer. Training chunks are K-token windows at random offsets of the training
+token stream (a few get a padded tail, as the last chunk of any text does).
+
+Losses, per chunk and divided by K: cross-entropy of the K tokens; for a variational
+codec also kl_weight * sum_j max(KL_j, free_bits), with KL_j the batch-mean KL of latent
+dimension j to N(0, 1) ("free bits": a dimension is not pushed below the floor). The
+latent fed to the decoder in training is z = mean + std * eps (variational), then latent
+dropout; the encoder's input tokens are replaced by <mask> with probability
+token_mask_prob. All three exist only in training.
+
+Same recipe + same seed + same thread count gives bit-identical weights.
+"""
+
+from __future__ import annotations
+
+import argparse
+import copy
+import hashlib
+import math
+import platform
+import sys
+import time
+from dataclasses import asdict, dataclass, field, fields, replace
+from functools import lru_cache
+from pathlib import Path
+from typing import Any, Callable, Sequence
+
+import numpy as np
+import torch
+from torch import nn
+
+from core.checkpoint import Codec, save_codec
+from core.corpus import Corpus, build_corpus
+from core.model import ChunkMLP, ChunkMLPConfig, build_model
+from core.text import Chunks, chunk_text, demo_text, text_sha256
+from core.tokenizer import MASK_TOKEN, PAD_TOKEN, token_byte_lengths, train_byte_bpe
+
+Log = Callable[[str], None]
+
+MASK_ID = 1
+HELD_OUT_TOKENS = 50_000
+SWEEP_TOKENS = 20_000
+SWEEP_REPEATS = 2
+SWEEP_SEED = 0
+# data-scale (relative) sigmas: 0, then 28 steps growing by a factor ~1.29 from 0.002 to 2
+DATA_SCALE_SIGMAS = (0.0,) + tuple(round(0.002 * (1000 ** (i / 27)), 6) for i in range(28))
+# isotropic (absolute) sigmas: 0, then 32 steps growing by a factor ~1.33 from 0.001 to 10
+ISOTROPIC_SIGMAS = (0.0,) + tuple(round(0.001 * (10_000 ** (i / 31)), 6) for i in range(32))
+
+
+@dataclass(frozen=True)
+class Recipe:
+    name: str = "custom"
+    chunk_size: int = 4
+    vocab_size: int = 2048
+    latent_dim: int = 32
+    embed_dim: int = 128
+    width: int = 512
+    depth: int = 2
+    variational: bool = False
+    kl_weight: float = 0.0
+    free_bits: float = 0.0
+    latent_dropout: float = 0.0
+    token_mask_prob: float = 0.0
+    pad_tail_prob: float = 0.02
+    steps: int = 10_000
+    batch_size: int = 512
+    lr: float = 3e-3
+    min_lr_ratio: float = 0.02
+    warmup_steps: int = 200
+    weight_decay: float = 0.01
+    grad_clip: float = 1.0
+    seed: int = 0
+    minutes: float = 40.0
+    threads: int = 2
+    log_every: int = 250
+    save_dtype: str = "float16"
+    why: str = ""
+
+    def model_config(self, pad_id: int = 0) -> ChunkMLPConfig:
+        return ChunkMLPConfig(
+            chunk_size=self.chunk_size,
+            vocab_size=self.vocab_size,
+            latent_dim=self.latent_dim,
+            embed_dim=self.embed_dim,
+            width=self.width,
+            depth=self.depth,
+            variational=self.variational,
+            pad_id=pad_id,
+        )
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+RECIPES: dict[str, Recipe] = {
+    "plain": Recipe(
+        name="plain",
+        latent_dim=32,
+        width=768,
+        steps=12_000,
+        lr=3e-3,
+        minutes=20.0,
+        why="The baseline: a deterministic autoencoder trained on reconstruction alone; it decodes almost "
+        "perfectly at sigma 0 and breaks early under noise.",
+    ),
+    "tolerant": Recipe(
+        name="tolerant",
+        latent_dim=128,
+        width=768,
+        variational=True,
+        kl_weight=0.05,
+        free_bits=0.25,
+        latent_dropout=0.1,
+        token_mask_prob=0.05,
+        steps=12_000,
+        lr=3e-3,
+        minutes=20.0,
+        why="Variational with a small KL weight, a per-dimension KL floor, latent dropout and input-token "
+        "masking: it reconstructs almost as well as plain and takes several times more data-scale noise.",
+    ),
+    "plain-wide": Recipe(
+        name="plain-wide",
+        latent_dim=128,
+        width=768,
+        steps=12_000,
+        lr=3e-3,
+        minutes=20.0,
+        why="Plain reconstruction with the tolerant model's latent size: compare it with tolerant to see what "
+        "the regularisers buy beyond a bigger latent, and with plain to see what the bigger latent alone buys.",
+    ),
+}
+
+
+@lru_cache(maxsize=2)
+def shared_data(vocab_size: int = 2048) -> tuple[Corpus, Any]:
+    """The corpus and the tokenizer trained on its training split, built once per process."""
+    corpus = build_corpus()
+    tokenizer = train_byte_bpe(corpus.train, vocab_size)
+    return corpus, tokenizer
+
+
+def tokenizer_sha256(tokenizer) -> str:
+    return hashlib.sha256(tokenizer.to_str().encode("utf-8")).hexdigest()
+
+
+def token_stream(tokenizer, texts: Sequence[str]) -> np.ndarray:
+    """All texts tokenized and concatenated, in order, as int64."""
+    encodings = tokenizer.encode_batch(list(texts), add_special_tokens=False)
+    parts = [np.asarray(e.ids, dtype=np.int64) for e in encodings]
+    return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
+
+
+def prefix_chunks(codec: Codec, text: str, max_tokens: int) -> Chunks:
+    """The first `max_tokens` tokens of a text as chunks, the text cut where the last one ends."""
+    chunks = chunk_text(text, codec)
+    if chunks.num_tokens <= max_tokens:
+        return chunks
+    end = int(chunks.spans[max_tokens - 1, 1])
+    cut = text[:end]
+    return Chunks(
+        text=cut,
+        text_sha256=text_sha256(cut),
+        token_ids=chunks.token_ids[:max_tokens].copy(),
+        spans=chunks.spans[:max_tokens].copy(),
+        chunk_size=chunks.chunk_size,
+        pad_id=chunks.pad_id,
+    )
+
+
+def _sample_batch(stream: torch.Tensor, recipe: Recipe, generator: torch.Generator, pad_id: int) -> torch.Tensor:
+    k = recipe.chunk_size
+    starts = torch.randint(0, len(stream) - k, (recipe.batch_size,), generator=generator)
+    ids = stream[starts.unsqueeze(1) + torch.arange(k)]
+    if recipe.pad_tail_prob > 0:
+        tail = torch.rand(recipe.batch_size, generator=generator) < recipe.pad_tail_prob
+        keep = torch.randint(1, k, (recipe.batch_size,), generator=generator)
+        padded = tail.unsqueeze(1) & (torch.arange(k).unsqueeze(0) >= keep.unsqueeze(1))
+        ids = ids.masked_fill(padded, pad_id)
+    return ids
+
+
+def _lr_at(step: int, recipe: Recipe) -> float:
+    if step < recipe.warmup_steps:
+        return recipe.lr * (step + 1) / recipe.warmup_steps
+    progress = (step - recipe.warmup_steps) / max(1, recipe.steps - recipe.warmup_steps)
+    floor = recipe.min_lr_ratio
+    return recipe.lr * (floor + (1 - floor) * 0.5 * (1 + math.cos(math.pi * min(1.0, progress))))
+
+
+def training_loss(
+    model: ChunkMLP, ids: torch.Tensor, recipe: Recipe, generator: torch.Generator
+) -> tuple[torch.Tensor, dict[str, float]]:
+    """The training objective on one batch; regularisers are drawn from `generator`."""
+    k = recipe.chunk_size
+    inputs = ids
+    if recipe.token_mask_prob > 0:
+        masked = torch.rand(ids.shape, generator=generator) < recipe.token_mask_prob
+        inputs = ids.masked_fill(masked, MASK_ID)
+    mean, std = model.encode(inputs)
+    z = mean
+    stats: dict[str, float] = {}
+    kl_term = torch.zeros(())
+    if std is not None:
+        z = mean + std * torch.randn(mean.shape, generator=generator)
+        kl = 0.5 * (mean.square() + std.square() - 1.0) - std.log()
+        kl_per_dim = kl.mean(0)
+        kl_term = recipe.kl_weight * kl_per_dim.clamp(min=recipe.free_bits).sum()
+        stats["kl"] = float(kl_per_dim.sum())
+        stats["std"] = float(std.mean())
+    if recipe.latent_dropout > 0:
+        keep = torch.rand(z.shape, generator=generator) >= recipe.latent_dropout
+        z = z * keep / (1.0 - recipe.latent_dropout)
+    logits = model.decode(z)
+    ce = nn.functional.cross_entropy(logits.reshape(-1, logits.shape[-1]), ids.reshape(-1))
+    loss = ce + kl_term / k
+    stats["ce"] = float(ce)
+    stats["acc"] = float((logits.argmax(-1) == ids).float().mean())
+    return loss, stats
+
+
+@torch.inference_mode()
+def chunk_accuracy(model: ChunkMLP, ids: torch.Tensor, mask: torch.Tensor, batch: int = 2048) -> float:
+    """Token accuracy of a plain decode of the posterior mean, over real tokens."""
+    was_training = model.training
+    model.eval()
+    correct = total = 0
+    for start in range(0, len(ids), batch):
+        x, m = ids[start : start + batch], mask[start : start + batch]
+        predicted = model.decode(model.encode(x)[0]).argmax(-1)
+        correct += int(((predicted == x) & m).sum())
+        total += int(m.sum())
+    model.train(was_training)
+    return correct / max(1, total)
+
+
+def library_versions() -> dict[str, str]:
+    import tokenizers
+
+    import core
+
+    return {
+        "python": platform.python_version(),
+        "torch": torch.__version__,
+        "tokenizers": tokenizers.__version__,
+        "numpy": np.__version__,
+        "chunkscope": core.__version__,
+    }
+
+
+def _tolerances_dict(result) -> dict[str, dict]:
+    return {f"{t.level:g}": {"sigma": t.sigma, "status": t.status} for t in result.tolerances}
+
+
+def measure(codec: Codec, held_out_text: str, log: Log = print, sweep_tokens: int = SWEEP_TOKENS,
+            repeats: int = SWEEP_REPEATS, held_out_tokens: int = HELD_OUT_TOKENS) -> dict[str, Any]:
+    """The card's measured numbers: sigma-0 accuracy on held-out and demo text, tolerances, latent RMS."""
+    from core.sweep import SweepSettings, run_sweep
+
+    measured: dict[str, Any] = {}
+    held = prefix_chunks(codec, held_out_text, held_out_tokens)
+    zero = run_sweep(codec, held, SweepSettings(sigmas=(0.0,), repeats=1, noise="isotropic", seed=SWEEP_SEED))
+    measured["held_out"] = {
+        "tokens": held.num_tokens,
+        "text_sha256": held.text_sha256,
+        "rule": f"the first {held_out_tokens} tokens of the held-out split",
+        "token_accuracy_sigma0": zero.curves[0].token_accuracy,
+    }
+    demo = chunk_text(demo_text(), codec)
+    zero_demo = run_sweep(codec, demo, SweepSettings(sigmas=(0.0,), repeats=1, noise="isotropic", seed=SWEEP_SEED))
+    measured["demo"] = {
+        "tokens": demo.num_tokens,
+        "text_sha256": demo.text_sha256,
+        "token_accuracy_sigma0": zero_demo.curves[0].token_accuracy,
+    }
+    log(f"  sigma 0: held-out {100 * measured['held_out']['token_accuracy_sigma0']:.3f} %, "
+        f"demo {100 * measured['demo']['token_accuracy_sigma0']:.3f} %")
+    sweep_chunks = prefix_chunks(codec, held_out_text, sweep_tokens)
+    tolerances: dict[str, Any] = {}
+    for noise, grid in (("isotropic", ISOTROPIC_SIGMAS), ("data-scale", DATA_SCALE_SIGMAS)):
+        settings = SweepSettings(sigmas=grid, repeats=repeats, noise=noise, seed=SWEEP_SEED)
+        result = run_sweep(codec, sweep_chunks, settings)
+        tolerances[noise] = _tolerances_dict(result)
+        measured["latent_rms"] = float(result.latent_rms)
+        log(f"  {noise}: " + ", ".join(f"{lvl}: {t['sigma']} ({t['status']})" for lvl, t in tolerances[noise].items()))
+    measured["tolerance"] = tolerances
+    measured["sweep"] = {
+        "text": f"the first {sweep_tokens} tokens of the held-out split",
+        "text_sha256": sweep_chunks.text_sha256,
+        "repeats": repeats,
+        "seed": SWEEP_SEED,
+        "sigmas": {"isotropic": list(ISOTROPIC_SIGMAS), "data-scale": list(DATA_SCALE_SIGMAS)},
+    }
+    if codec.variational:
+        ids = sweep_chunks.ids()
+        with torch.inference_mode():
+            _, std = codec.model.encode(ids)
+        measured["posterior_std_mean"] = float(std.mean())
+    return measured
+
+
+def train(
+    recipe: Recipe,
+    out_path: str | Path,
+    log: Log = print,
+    corpus: Corpus | None = None,
+    tokenizer=None,
+    measure_card: bool = True,
+) -> Codec:
+    """Train one codec by `recipe`, measure it and save it with its card to `out_path`.
+
+    Ctrl-C stops training early: the last finite weights are measured and saved anyway.
+    """
+    if corpus is None or tokenizer is None:
+        corpus, tokenizer = shared_data(recipe.vocab_size)
+    if tokenizer.get_vocab_size() != recipe.vocab_size:
+        raise ValueError(f"the tokenizer has {tokenizer.get_vocab_size()} tokens but the recipe asks for {recipe.vocab_size}")
+    pad_id = tokenizer.token_to_id(PAD_TOKEN)
+    if tokenizer.token_to_id(MASK_TOKEN) != MASK_ID:
+        raise ValueError("the tokenizer's <mask> token is not id 1")
+    torch.set_num_threads(recipe.threads)
+    torch.manual_seed(recipe.seed)
+    generator = torch.Generator().manual_seed(recipe.seed)
+    stream = torch.from_numpy(token_stream(tokenizer, corpus.train))
+    held_stream = token_stream(tokenizer, corpus.held_out)[:HELD_OUT_TOKENS]
+    usable = len(held_stream) // recipe.chunk_size * recipe.chunk_size
+    held_ids = torch.from_numpy(held_stream[:usable].reshape(-1, recipe.chunk_size))
+    held_ids = held_ids[:2000]
+    held_mask = torch.ones_like(held_ids, dtype=torch.bool)
+    model = build_model(recipe.model_config(pad_id))
+    model.train()
+    decay = [p for n, p in model.named_parameters() if p.ndim >= 2 and "position" not in n]
+    no_decay = [p for n, p in model.named_parameters() if not (p.ndim >= 2 and "position" not in n)]
+    optimizer = torch.optim.AdamW(
+        [{"params": decay, "weight_decay": recipe.weight_decay}, {"params": no_decay, "weight_decay": 0.0}],
+        lr=recipe.lr,
+        betas=(0.9, 0.98),
+    )
+    log(f"[{recipe.name}] {sum(p.numel() for p in model.parameters()):,} parameters, "
+        f"{len(stream):,} training tokens, {recipe.steps} steps of {recipe.batch_size} chunks")
+    started = time.perf_counter()
+    good_state = copy.deepcopy(model.state_dict())
+    step = 0
+    stopped_by = "steps"
+    running: dict[str, float] = {}
+    try:
+        while step < recipe.steps:
+            if time.perf_counter() - started > recipe.minutes * 60:
+                stopped_by = "time budget"
+                break
+            for group in optimizer.param_groups:
+                group["lr"] = _lr_at(step, recipe)
+            ids = _sample_batch(stream, recipe, generator, pad_id)
+            loss, stats = training_loss(model, ids, recipe, generator)
+            optimizer.zero_grad(set_to_none=True)
+            loss.backward()
+            if recipe.grad_clip > 0:
+                nn.utils.clip_grad_norm_(model.parameters(), recipe.grad_clip)
+            optimizer.step()
+            step += 1
+            for key, value in stats.items():
+                running[key] = running.get(key, 0.0) + value
+            if step % recipe.log_every == 0 or step == recipe.steps:
+                n = recipe.log_every if step % recipe.log_every == 0 else step % recipe.log_every
+                avg = {key: value / n for key, value in running.items()}
+                running = {}
+                if not all(math.isfinite(v) for v in avg.values()):
+                    log(f"[{recipe.name}] step {step}: non-finite loss; stopping with the last good weights")
+                    model.load_state_dict(good_state)
+                    stopped_by = "non-finite loss"
+                    break
+                good_state = copy.deepcopy(model.state_dict())
+                held_acc = chunk_accuracy(model, held_ids, held_mask)
+                extra = "".join(f" {key} {avg[key]:.3f}" for key in ("kl", "std") if key in avg)
+                log(f"[{recipe.name}] step {step:6d}  loss {avg['ce']:.4f}  train acc {100 * avg['acc']:.2f} %  "
+                    f"held-out acc {100 * held_acc:.3f} %{extra}  lr {_lr_at(step - 1, recipe):.2e}  "
+                    f"{time.perf_counter() - started:6.0f} s")
+    except KeyboardInterrupt:
+        stopped_by = "interrupted"
+        if not all(torch.isfinite(v).all() for v in model.state_dict().values()):
+            model.load_state_dict(good_state)
+        log(f"[{recipe.name}] interrupted at step {step}; saving the last good weights")
+    wall = time.perf_counter() - started
+    model.eval()
+    codec = Codec(model=model, tokenizer=tokenizer)
+    card: dict[str, Any] = {
+        "name": recipe.name,
+        "why": recipe.why,
+        "recipe": recipe.to_dict(),
+        "corpus": corpus.info.to_dict(),
+        "tokenizer": {
+            "kind": "byte-level BPE trained on the training split",
+            "vocab_size": tokenizer.get_vocab_size(),
+            "sha256": tokenizer_sha256(tokenizer),
+        },
+        "versions": library_versions(),
+        "train_wall_seconds": round(wall, 1),
+        "steps_done": step,
+        "stopped_by": stopped_by,
+        "threads": torch.get_num_threads(),
+    }
+    if measure_card:
+        started_measure = time.perf_counter()
+        try:
+            card["measured"] = measure(codec, corpus.held_out_text, log)
+        except KeyboardInterrupt:
+            log(f"[{recipe.name}] measuring interrupted; the card has no measured numbers")
+        card["measure_wall_seconds"] = round(time.perf_counter() - started_measure, 1)
+    codec.card = card
+    save_codec(codec, out_path, dtype=recipe.save_dtype)
+    if recipe.save_dtype != "float32" and "measured" in card:
+        # the shipped numbers describe the stored (rounded) weights, so check they survived rounding
+        from core.checkpoint import load_codec
+
+        stored = load_codec(out_path)
+        held = prefix_chunks(stored, corpus.held_out_text, HELD_OUT_TOKENS)
+        acc = chunk_accuracy(stored.model, held.ids(), held.mask())
+        card["measured"]["held_out"]["token_accuracy_sigma0_stored"] = acc
+        codec = stored
+        codec.card = card
+        save_codec(codec, out_path, dtype=recipe.save_dtype)
+    log(f"[{recipe.name}] saved {out_path} ({Path(out_path).stat().st_size / 1e6:.2f} MB) after {step} steps, {wall:.0f} s")
+    return codec
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    group = parser.add_mutually_exclusive_group(required=True)
+    group.add_argument("--recipe", choices=sorted(RECIPES), help="train one named recipe")
+    group.add_argument("--all", action="store_true", help="rebuild every sample model")
+    parser.add_argument("--out", help="checkpoint path for --recipe (default: sample_models/NAME.safetensors)")
+    parser.add_argument("--out-dir", default="sample_models", help="folder for --all")
+    parser.add_argument("--steps", type=int, help="override the recipe's number of steps")
+    parser.add_argument("--minutes", type=float, help="override the recipe's time budget")
+    parser.add_argument("--seed", type=int, help="override the recipe's seed")
+    parser.add_argument("--no-measure", action="store_true", help="skip the card's sweeps (faster)")
+
+
+def _override(recipe: Recipe, args: argparse.Namespace) -> Recipe:
+    changes = {key: getattr(args, key) for key in ("steps", "minutes", "seed") if getattr(args, key, None) is not None}
+    return replace(recipe, **changes)
+
+
+def run_from_args(args: argparse.Namespace) -> int:
+    names = sorted(RECIPES) if args.all else [args.recipe]
+    corpus, tokenizer = shared_data(RECIPES[names[0]].vocab_size)
+    for name in names:
+        recipe = _override(RECIPES[name], args)
+        out = Path(args.out_dir) / f"{name}.safetensors" if args.all or not args.out else Path(args.out)
+        train(recipe, out, corpus=corpus, tokenizer=tokenizer, measure_card=not args.no_measure)
+    return 0
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="python -m core.train", description="Train chunk-mlp codecs.")
+    add_arguments(parser)
+    return run_from_args(parser.parse_args(argv))
+
+
+if __name__ == "__main__":
+    sys.exit(main())
