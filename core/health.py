@@ -94,3 +94,16 @@ def latent_health(
         nn_half_distance=half.numpy(),
         nn_sampled=sampled,
     )
+
+
+def expected_noise_norm(sigma: float, noise: str, encoded: Encoded) -> float:
+    """Root-mean-square length of the perturbation sigma · scale ⊙ ε, comparable with the
+    nearest-neighbour half-distance: a chunk whose perturbation is shorter than its
+    half-distance is still nearest to its own mean."""
+    if noise == "isotropic":
+        return float(sigma) * float(encoded.mean.shape[1]) ** 0.5
+    if noise == "data-scale":
+        return float(sigma) * float(encoded.rms_per_dim.square().sum().sqrt())
+    if noise == "posterior" and encoded.std is not None:
+        return float(sigma) * float(encoded.std.square().sum(1).mean().sqrt())
+    raise ValueError(f"no noise norm for noise model {noise!r}")
