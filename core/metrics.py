@@ -26,7 +26,9 @@ def wilson_interval(successes: int, n: int, z: float = WILSON_Z) -> tuple[float,
     denom = 1.0 + z * z / n
     centre = (p + z * z / (2 * n)) / denom
     half = z * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / denom
-    return (max(0.0, centre - half), min(1.0, centre + half))
+    low = 0.0 if successes == 0 else max(0.0, centre - half)
+    high = 1.0 if successes == n else min(1.0, centre + half)
+    return (low, high)
 
 
 def frequency_bucket_labels() -> list[str]:

@@ -55,6 +55,8 @@ def parse_sigmas(spec: str) -> tuple[float, ...]:
                 raise SettingsError(f"the sigma range {spec!r} has {count} points; at most 10000 are allowed.")
             return tuple(round(a + i * step, 10) for i in range(count))
         return tuple(float(x) for x in spec.replace(" ", "").split(",") if x)
+    except SettingsError:
+        raise
     except ValueError:
         raise SettingsError(f"sigmas must look like 0:1:0.05 or 0,0.1,0.2, not {spec!r}.") from None
 

@@ -1,0 +1,97 @@
+"""Shared fixtures: a tokenizer trained on a few paragraphs, a small untrained chunk-mlp
+checkpoint, and a contract-only codec that reconstructs perfectly at sigma = 0."""
+
+from __future__ import annotations
+
+import os
+from types import SimpleNamespace
+
+os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+
+import numpy as np
+import pytest
+import torch
+
+from core.checkpoint import Codec, save_codec
+
+torch.set_num_threads(1)  # the tensors here are small; one thread avoids thread-pool contention on shared machines
+from core.model import ChunkMLPConfig, build_model
+from core.tokenizer import token_byte_lengths, train_byte_bpe
+
+FIXTURE_TEXT = (
+    "The valley line climbs 412 metres in 9.5 km; on the steepest stretch the gradient is 1:28.\n"
+    "Volunteers logged 06:45 departures, a café stop at Ober-Ränk, and €1,240.50 of coal (Δ = +3 %).\n"
+    "Sleepers, fishplates, and the old water tower were checked twice — once at dawn, once at dusk.\n"
+) * 4
+
+
+@pytest.fixture(scope="session")
+def tokenizer():
+    return train_byte_bpe([FIXTURE_TEXT], 320)
+
+
+@pytest.fixture(scope="session")
+def small_codec(tokenizer):
+    torch.manual_seed(0)
+    config = ChunkMLPConfig(chunk_size=4, vocab_size=tokenizer.get_vocab_size(), latent_dim=16, embed_dim=16, width=32, depth=1, variational=True)
+    return Codec(build_model(config), tokenizer, card={"note": "test fixture"})
+
+
+@pytest.fixture()
+def small_checkpoint(small_codec, tmp_path):
+    path = tmp_path / "small.safetensors"
+    save_codec(small_codec, path)
+    return path
+
+
+class LookupCodec:
+    """A codec that meets the contract without learning: each token has a fixed random
+    vector, a chunk's latent is the concatenation, and decoding scores every token by
+    negative squared distance. It reconstructs perfectly at sigma = 0 and breaks under noise."""
+
+    def __init__(self, tokenizer, chunk_size: int = 4, per_token_dim: int = 3, sharpness: float = 20.0, seed: int = 0, scale: float = 1.0):
+        self.tokenizer = tokenizer
+        self.chunk_size = chunk_size
+        self.vocab_size = tokenizer.get_vocab_size()
+        self.pad_id = 0
+        self.variational = False
+        self.latent_dim = chunk_size * per_token_dim
+        self.per_token_dim = per_token_dim
+        self.sharpness = sharpness
+        self.scale = scale
+        self.table = torch.randn(self.vocab_size, per_token_dim, generator=torch.Generator().manual_seed(seed))
+        self.token_byte_lengths = token_byte_lengths(tokenizer)
+        self.name = "lookup"
+        self.sha256 = "0" * 64
+        self.path = ""
+        self.card = {}
+        self.config = SimpleNamespace(to_dict=lambda: {"arch": "lookup", "chunk_size": chunk_size, "pad_id": 0})
+        self.decoded_latents: list[torch.Tensor] | None = None
+
+    def encode(self, ids):
+        return self.table[ids].reshape(ids.shape[0], -1) * self.scale, None
+
+    def decode(self, z):
+        if self.decoded_latents is not None:
+            self.decoded_latents.append(z.clone())
+        slots = (z / self.scale).reshape(z.shape[0], self.chunk_size, self.per_token_dim)
+        squared = slots.square().sum(-1, keepdim=True) - 2 * slots @ self.table.T + self.table.square().sum(-1)
+        return -self.sharpness * squared
+
+
+@pytest.fixture()
+def lookup_codec(tokenizer):
+    return LookupCodec(tokenizer)
+
+
+def make_lookup(tokenizer, **kwargs) -> LookupCodec:
+    return LookupCodec(tokenizer, **kwargs)
+
+
+@pytest.fixture(scope="session")
+def fixture_text():
+    return FIXTURE_TEXT
+
+
+def rng(seed: int = 0) -> np.random.Generator:
+    return np.random.default_rng(seed)
