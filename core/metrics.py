@@ -60,15 +60,21 @@ class TokenScores:
     correct: torch.Tensor  # [B, K] bool
 
 
-def score_logits(logits: torch.Tensor, targets: torch.Tensor):
-    """argmax, top-1 confidence, NLL of the truth and Brier score per token, in few passes over V."""
+@torch.inference_mode()
+def score_logits(logits: torch.Tensor, targets: torch.Tensor, inplace: bool = False):
+    """argmax, top-1 confidence, NLL of the truth and Brier score per token.
+
+    Few passes over the vocabulary: max, exp, sum, norm. With inplace=True the logits
+    buffer is reused for the exponentials (the sweep owns its logits; this keeps the
+    metrics' cost small beside the decoder's).
+    """
     top, predicted = logits.max(-1)
     true_logit = logits.gather(-1, targets.unsqueeze(-1)).squeeze(-1)
-    e = torch.exp(logits - top.unsqueeze(-1))
+    shifted = logits.sub_(top.unsqueeze(-1)) if inplace else logits - top.unsqueeze(-1)
+    e = shifted.exp_()
     s = e.sum(-1)
     sq = torch.linalg.vector_norm(e, dim=-1).square()
-    log_s = s.log()
-    nll = log_s - (true_logit - top)
+    nll = s.log() - (true_logit - top)
     p_true = torch.exp(-nll)
     confidence = 1.0 / s
     brier = sq / (s * s) - 2.0 * p_true + 1.0
@@ -127,9 +133,14 @@ class SigmaAccumulator:
         self.confusions: Counter[int] = Counter()
 
     def update(
-        self, logits: torch.Tensor, targets: torch.Tensor, mask: torch.Tensor, bucket: torch.Tensor | None = None
+        self,
+        logits: torch.Tensor,
+        targets: torch.Tensor,
+        mask: torch.Tensor,
+        bucket: torch.Tensor | None = None,
+        inplace: bool = False,
     ) -> TokenScores:
-        predicted, confidence, nll, brier = score_logits(logits, targets)
+        predicted, confidence, nll, brier = score_logits(logits, targets, inplace=inplace)
         correct = predicted == targets
         self.add(predicted, correct, confidence, nll, brier, targets, mask, bucket)
         return TokenScores(predicted, correct)

@@ -328,7 +328,7 @@ def run_sweep(
                     raise SweepCancelled()
                 z = mean + sigma_tensor[si] * step if sigmas[si] > 0 else mean
                 logits = codec.decode(z)
-                scores = accumulators[si].update(logits, ids, mask, bucket)
+                scores = accumulators[si].update(logits, ids, mask, bucket, inplace=True)
                 flat_wrong = (~scores.correct).reshape(-1)[: t1 - t0].numpy()
                 wrong_counts[t0:t1, si] += flat_wrong.astype(count_dtype)
                 if r == 0:

@@ -1,0 +1,149 @@
+"""Sweep speed and memory, printed as ratios (run by hand; never part of the tests).
+
+1. decode throughput of a sweep vs. a bare loop of codec.decode + argmax over the same
+   latents at that loop's best batch size (target: ratio >= 0.90);
+2. encode calls per sweep (target: once per chunk batch, independent of the grid);
+3. peak memory of a sweep over ~1,000,000 tokens vs ~10,000 tokens, each in a fresh
+   process (target: within 1 GB).
+
+    python benchmarks/bench_sweep.py [--checkpoint sample_models/plain.safetensors] [--skip-memory]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+import torch  # noqa: E402
+
+from core.checkpoint import load_codec  # noqa: E402
+from core.latent import encode_chunks  # noqa: E402
+from core.sweep import SweepSettings, run_sweep  # noqa: E402
+from core.text import chunk_text, demo_text  # noqa: E402
+
+DEFAULT_CHECKPOINT = ROOT / "sample_models" / "plain.safetensors"
+
+
+def bare_loop(codec, z: torch.Tensor, batch: int, rounds: int) -> float:
+    """Chunks per second of decode + argmax alone."""
+    n = z.shape[0]
+    started = time.perf_counter()
+    for _ in range(rounds):
+        for start in range(0, n, batch):
+            codec.decode(z[start : start + batch]).argmax(-1)
+    return rounds * n / (time.perf_counter() - started)
+
+
+def throughput(codec, chunks, repeats: int = 3) -> None:
+    encoded = encode_chunks(codec, chunks)
+    z = encoded.mean + 0.1 * torch.randn_like(encoded.mean)
+    sigmas = (0.0, 0.05, 0.1, 0.2, 0.4, 0.8)
+    best_batch, best = None, 0.0
+    for batch in (128, 256, 512, 1024, 2048, 4096):
+        bare_loop(codec, z, batch, 1)  # warm up
+        rate = max(bare_loop(codec, z, batch, 2) for _ in range(repeats))
+        print(f"  bare decode+argmax, batch {batch:5d}: {rate:10.0f} chunks/s")
+        if rate > best:
+            best_batch, best = batch, rate
+    sweep_rates = {}
+    for batch in (256, 512, 1024, 2048):
+        settings = SweepSettings(sigmas=sigmas, repeats=2, noise="isotropic", batch_chunks=batch)
+        run_sweep(codec, chunks, settings, encoded=encoded)  # warm up
+        rates = []
+        for _ in range(repeats):
+            result = run_sweep(codec, chunks, settings, encoded=encoded)
+            rates.append(result.decoded_chunks / result.elapsed_s)
+        sweep_rates[batch] = max(rates)
+        print(f"  sweep (all metrics),  batch {batch:5d}: {sweep_rates[batch]:10.0f} chunks/s")
+    default = SweepSettings().batch_chunks
+    print(f"best bare loop: {best:.0f} chunks/s at batch {best_batch}")
+    print(f"ratio sweep(default batch {default}) / best bare loop = {sweep_rates[default] / best:.3f}   (target >= 0.90)")
+    print(f"ratio best sweep batch / best bare loop = {max(sweep_rates.values()) / best:.3f}")
+
+
+class CountingCodec:
+    def __init__(self, inner):
+        self.inner = inner
+        self.encode_calls = 0
+        self.decode_calls = 0
+
+    def __getattr__(self, name):
+        return getattr(self.inner, name)
+
+    def encode(self, ids):
+        self.encode_calls += 1
+        return self.inner.encode(ids)
+
+    def decode(self, z):
+        self.decode_calls += 1
+        return self.inner.decode(z)
+
+
+def encode_once(codec, chunks) -> None:
+    for grid in ((0.0, 0.1), tuple(i / 20 for i in range(21))):
+        counting = CountingCodec(codec)
+        run_sweep(counting, chunks, SweepSettings(sigmas=grid, repeats=2))
+        print(f"  grid of {len(grid):2d} sigmas x 2 repeats: {counting.encode_calls} encode call(s), {counting.decode_calls} decode calls")
+
+
+MEMORY_CHILD = """
+import resource, sys, json
+sys.path.insert(0, {root!r})
+from core.checkpoint import load_codec
+from core.sweep import SweepSettings, run_sweep
+from core.text import chunk_text, demo_text
+codec = load_codec({ckpt!r})
+base = demo_text()
+chunks = chunk_text(base, codec)
+copies = max(1, round({tokens} / chunks.num_tokens))
+text = "\\n".join(base for _ in range(copies))
+chunks = chunk_text(text, codec)
+del text, base
+before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+result = run_sweep(codec, chunks, SweepSettings(sigmas=(0.0, 0.1, 0.3, 1.0), repeats=1, noise="data-scale"))
+peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+print(json.dumps({{"tokens": chunks.num_tokens, "peak_mb": peak / 1024, "before_sweep_mb": before / 1024, "elapsed_s": result.elapsed_s}}))
+"""
+
+
+def memory(checkpoint: Path) -> None:
+    rows = []
+    for tokens in (10_000, 1_000_000):
+        code = MEMORY_CHILD.format(root=str(ROOT), ckpt=str(checkpoint), tokens=tokens)
+        out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+        row = json.loads(out.stdout.strip().splitlines()[-1])
+        rows.append(row)
+        print(f"  {row['tokens']:>9,} tokens: peak RSS {row['peak_mb']:8.1f} MB (sweep took {row['elapsed_s']:.1f}s)")
+    diff = rows[1]["peak_mb"] - rows[0]["peak_mb"]
+    print(f"peak memory difference 1M vs 10k tokens: {diff:.0f} MB   (target <= 1024 MB)")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--checkpoint", default=str(DEFAULT_CHECKPOINT))
+    parser.add_argument("--skip-memory", action="store_true")
+    parser.add_argument("--threads", type=int, default=torch.get_num_threads())
+    args = parser.parse_args()
+    torch.set_num_threads(args.threads)
+    codec = load_codec(args.checkpoint)
+    chunks = chunk_text(demo_text(), codec)
+    print(f"{codec.name}: V={codec.vocab_size}, D={codec.latent_dim}, {codec.num_parameters:,} parameters; "
+          f"demo text {chunks.num_tokens:,} tokens = {chunks.num_chunks:,} chunks; torch threads {torch.get_num_threads()}")
+    print("1. decode throughput")
+    throughput(codec, chunks)
+    print("2. encoding happens once per sweep")
+    encode_once(codec, chunks)
+    if not args.skip_memory:
+        print("3. peak memory")
+        memory(Path(args.checkpoint))
+
+
+if __name__ == "__main__":
+    main()
