@@ -10,7 +10,6 @@ import hashlib
 import json
 import os
 import struct
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -22,6 +21,7 @@ from safetensors.torch import save_file
 from tokenizers import Tokenizer
 
 from core.errors import CheckpointError
+from core.files import staged_file
 from core.model import ARCHITECTURES, ChunkMLP, ChunkMLPConfig, build_model
 from core.tokenizer import token_byte_lengths
 
@@ -121,15 +121,8 @@ def save_codec(codec: Codec, path: str | os.PathLike, dtype: str = "float32") ->
     }
     if codec.card:
         metadata[KEY_CARD] = json.dumps(codec.card, sort_keys=True)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    os.close(fd)
-    try:
-        save_file(tensors, tmp, metadata=metadata)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    with staged_file(path, force=True) as tmp:
+        save_file(tensors, str(tmp), metadata=metadata)
     codec.path = str(path)
     codec.sha256 = file_sha256(path)
     return codec.sha256

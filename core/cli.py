@@ -142,20 +142,137 @@ def cmd_sweep(args: argparse.Namespace) -> int:
     return 0
 
 
+def print_comparison(comparison, stream=None) -> None:
+    stream = stream or sys.stdout
+    print("tolerance: absolute σ (isotropic) | relative σ (data-scale)", file=stream)
+    print(f"{'checkpoint':<20} {'acc@σ=0':>9} {'RMS':>7} | {'99.9 %':>9} {'99 %':>9} {'90 %':>9} | {'99.9 %':>9} {'99 %':>9} {'90 %':>9}", file=stream)
+    for t in comparison.tolerances:
+        from core.sweep import Tolerance
+
+        iso = [Tolerance(**x).label() for x in t.absolute]
+        ds = [Tolerance(**x).label() for x in t.data_scale]
+        print(f"{t.name[:20]:<20} {t.accuracy_at_zero * 100:8.3f}% {t.latent_rms:7.3g} | "
+              + " ".join(f"{x:>9}" for x in iso) + " | " + " ".join(f"{x:>9}" for x in ds), file=stream)
+    if comparison.scale_warning:
+        print(f"warning: {comparison.scale_warning}", file=stream)
+    for p in comparison.paired:
+        real = [r for r in p.rows if r.pvalue < 0.05]
+        where = ", ".join(f"{r.sigma:.3g} ({100 * r.difference:+.2f} pts)" for r in real[:8]) or "nowhere"
+        print(f"{p.name_b} − {p.name_a} ({comparison.main_noise}, per {p.unit}): significant at p < 0.05 at σ = {where}"
+              + (" …" if len(real) > 8 else ""), file=stream)
+
+
+def _comparison_from_args(args, codecs, text, source, progress=None):
+    from core.compare import compare_codecs
+    from core.sweep import parse_sigmas
+
+    settings = _settings_from_args(args)
+    absolute = parse_sigmas(args.abs_sigmas) if getattr(args, "abs_sigmas", None) else None
+    return compare_codecs(codecs, text, sigmas=settings.sigmas, absolute_sigmas=absolute, repeats=settings.repeats,
+                          seed=settings.seed, main_noise=settings.noise, text_source=source, progress=progress)
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    from core.checkpoint import load_codec
+
+    out = Path(args.out)
+    if out.exists() and not args.force:
+        raise ChunkscopeError(f"{out} already exists; pass --force to replace it, or choose another --out.")
+    text, source = _load_text_arg(args.text)
+    codecs = [load_codec(p) for p in args.checkpoints]
+    if len({c.name for c in codecs}) != len(codecs):
+        raise ChunkscopeError("two checkpoints share a file name; rename one so the results can be told apart.")
+    progress = None if args.quiet else TerminalProgress("compare")
+    comparison = _comparison_from_args(args, codecs, text, source, progress)
+    comparison.write(out, force=args.force)
+    print(f"wrote {out}/ (compare.json, tolerances.csv, paired.csv, sweeps/)", file=sys.stderr)
+    print_comparison(comparison)
+    return 0
+
+
+def cmd_trend(args: argparse.Namespace) -> int:
+    from core.trend import sort_points, trend, trend_csv
+
+    settings = _settings_from_args(args)
+    out = Path(args.out) if args.out else None
+    if out is not None and (out / "trend.csv").exists() and not args.force:
+        raise ChunkscopeError(f"{out / 'trend.csv'} already exists; pass --force to replace it, or choose another --out.")
+    text, source = _load_text_arg(args.text)
+    points = []
+    print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} {'99.9 %':>9} {'99 %':>9} {'90 %':>9}")
+    for point in trend(args.folder, text, settings, text_source=source):
+        points.append(point)
+        if point.error:
+            print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} failed: {point.error}")
+            continue
+        from core.sweep import Tolerance
+
+        tols = [Tolerance(level, **point.tolerances[level]).label() for level in (0.999, 0.99, 0.9)]
+        print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} {point.accuracy_at_zero * 100:8.3f}% "
+              + " ".join(f"{x:>9}" for x in tols), flush=True)
+    if out is not None:
+        from core.report import write_text_atomic
+
+        write_text_atomic(out / "trend.csv", trend_csv(points), force=args.force)
+        write_text_atomic(out / "trend.json", json.dumps([p.to_dict() for p in sort_points(points)], indent=1), force=args.force)
+        print(f"wrote {out / 'trend.csv'} and trend.json", file=sys.stderr)
+    return 0 if any(p.error is None for p in points) else 2
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from core.checkpoint import load_codec
+    from core.compare import read_comparison
+    from core.report import build_report, write_text_atomic
+    from core.sweep import read_sweep, run_sweep
+    from core.text import chunk_text
+    from core.trend import trend
+
+    out = Path(args.out)
+    if out.exists() and not args.force:
+        raise ChunkscopeError(f"{out} already exists; pass --force to replace it, or choose another --out.")
+    if not args.inputs and not args.trend:
+        raise ChunkscopeError("give checkpoints or result folders to report on, or --trend FOLDER.")
+    sweeps, comparison, points = [], None, []
+    paths = [Path(p) for p in args.inputs]
+    folders = [p for p in paths if p.is_dir()]
+    files = [p for p in paths if not p.is_dir()]
+    for folder in folders:
+        if (folder / "compare.json").exists():
+            comparison = read_comparison(folder)
+        else:
+            sweeps.append(read_sweep(folder))
+    settings = _settings_from_args(args)
+    if files or args.trend:
+        text, source = _load_text_arg(args.text)
+    if files:
+        codecs = [load_codec(p) for p in files]
+        if len(codecs) >= 2:
+            comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"))
+        else:
+            chunks = chunk_text(text, codecs[0], source)
+            sweeps.append(run_sweep(codecs[0], chunks, settings, text_source=source, progress=None if args.quiet else TerminalProgress(codecs[0].name[:16])))
+    if args.trend:
+        points = list(trend(args.trend, text, settings, text_source=source))
+    html = build_report(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise, title=args.title)
+    write_text_atomic(out, html, force=args.force)
+    print(f"wrote {out} ({len(html) / 1024:.0f} KiB, self-contained)", file=sys.stderr)
+    return 0
+
+
 def cmd_train(args: argparse.Namespace) -> int:
     from core import train
 
     return train.run_from_args(args) or 0
 
 
-def add_sweep_arguments(p: argparse.ArgumentParser) -> None:
+def add_sweep_arguments(p: argparse.ArgumentParser, noise_choices=None) -> None:
     from core.latent import NOISE_MODELS
     from core.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED
 
     p.add_argument("--text", help="UTF-8 text file to evaluate on (default: the bundled demo text)")
     p.add_argument("--sigmas", help="grid as start:stop:step or a comma list (default: 0 and 24 steps from 0.01 to 2, x1.26 each)")
     p.add_argument("--repeats", type=int, default=DEFAULT_REPEATS, help=f"noise draws per chunk and sigma (default {DEFAULT_REPEATS})")
-    p.add_argument("--noise", choices=NOISE_MODELS, default=DEFAULT_NOISE, help=f"noise model (default {DEFAULT_NOISE})")
+    p.add_argument("--noise", choices=noise_choices or NOISE_MODELS, default=DEFAULT_NOISE, help=f"noise model (default {DEFAULT_NOISE})")
     p.add_argument("--seed", type=int, default=DEFAULT_SEED, help=f"noise seed (default {DEFAULT_SEED})")
     p.add_argument("--batch", type=int, default=512, help="chunks decoded per batch (rounded to a multiple of 256)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
@@ -193,17 +310,30 @@ def build_parser() -> argparse.ArgumentParser:
         train.add_arguments(p)
         p.set_defaults(func=cmd_train)
 
-    for extra in _extra_commands():
-        extra(sub)
+    p = sub.add_parser("compare", help="compare checkpoints on one text, paired", description="Sweep two or more checkpoints on the same text with the same noise seed, under data-scale and isotropic noise; write tolerances side by side, the curves and McNemar tests per sigma.")
+    p.add_argument("checkpoints", nargs="+", metavar="CKPT")
+    add_sweep_arguments(p, noise_choices=("data-scale", "isotropic"))
+    p.add_argument("--abs-sigmas", help="grid for the isotropic (absolute) sweep (default: the relative grid times the largest latent RMS)")
+    p.add_argument("--out", default="comparison", help="output folder (default: comparison)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    p.set_defaults(func=cmd_compare)
+
+    p = sub.add_parser("trend", help="tolerance through a training run (a folder of checkpoints)", description="Sweep every checkpoint in a folder and report accuracy at sigma 0 and the 99.9/99/90 % tolerances against training step (from each card, else from the file name).")
+    p.add_argument("folder")
+    add_sweep_arguments(p)
+    p.add_argument("--out", help="write trend.csv and trend.json into this folder")
+    p.add_argument("--force", action="store_true", help="replace existing output files")
+    p.set_defaults(func=cmd_trend)
+
+    p = sub.add_parser("report", help="one self-contained HTML report", description="Write one self-contained HTML file (inline plots, no outside links) from checkpoints (swept or compared on the text), or from folders written by 'sweep' or 'compare'.")
+    p.add_argument("inputs", nargs="*", metavar="INPUT", help="checkpoints, or folders written by 'sweep' / 'compare'")
+    add_sweep_arguments(p, noise_choices=("data-scale", "isotropic"))
+    p.add_argument("--trend", metavar="FOLDER", help="also sweep a folder of training checkpoints")
+    p.add_argument("--title", default="chunkscope report")
+    p.add_argument("--out", default="report.html", help="the HTML file to write (default: report.html)")
+    p.add_argument("--force", action="store_true", help="replace an existing file")
+    p.set_defaults(func=cmd_report)
     return parser
-
-
-def _extra_commands():
-    try:
-        from core import compare
-    except ImportError:
-        return []
-    return [compare.add_commands]
 
 
 def open_workbench(args: argparse.Namespace) -> int:

@@ -13,8 +13,6 @@ import json
 import math
 import os
 import platform
-import shutil
-import tempfile
 import time
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timezone
@@ -26,9 +24,11 @@ import torch
 
 import core
 from core.errors import SettingsError, SweepCancelled
+from core.files import staged_folder
 from core.latent import NOISE_BLOCK, NOISE_MODELS, Encoded, Progress, ShouldStop, check_noise, draw_eps, encode_chunks, noise_scale
 from core.metrics import SigmaAccumulator, SigmaMetrics, frequency_buckets
 from core.text import Chunks
+from core.tokenizer import token_display
 
 TOLERANCE_LEVELS = (0.999, 0.99, 0.9)
 DEFAULT_NOISE = "data-scale"
@@ -145,6 +145,10 @@ class SweepResult:
     latent_rms: float
     elapsed_s: float
     decoded_chunks: int
+    token_text: dict[int, str] = field(default_factory=dict)  # readable form of every id in the text or decoded
+
+    def display(self, token_id: int) -> str:
+        return self.token_text.get(int(token_id), f"#{int(token_id)}")
 
     @property
     def sigmas(self) -> tuple[float, ...]:
@@ -204,15 +208,12 @@ class SweepResult:
     def write(self, directory: str | os.PathLike, force: bool = False) -> Path:
         """Write sweep.json, curves.csv, tokens.csv and arrays.npz into a fresh directory, atomically."""
         directory = Path(directory)
-        if directory.exists() and not force:
-            raise FileExistsError(f"{directory} already exists; choose another folder or replace it on purpose.")
-        directory.parent.mkdir(parents=True, exist_ok=True)
-        staging = Path(tempfile.mkdtemp(prefix=f".{directory.name}.", dir=directory.parent))
-        try:
+        with staged_folder(directory, force) as staging:
             (staging / "sweep.json").write_text(json.dumps(self.to_json_dict(), indent=1, allow_nan=True), encoding="utf-8")
             (staging / "curves.csv").write_text(self.curves_csv(), encoding="utf-8")
             (staging / "tokens.csv").write_text(self.tokens_csv(), encoding="utf-8")
             (staging / "text.txt").write_text(self.chunks.text, encoding="utf-8")
+            (staging / "vocab.json").write_text(json.dumps({str(k): v for k, v in self.token_text.items()}), encoding="utf-8")
             np.savez_compressed(
                 staging / "arrays.npz",
                 token_ids=self.chunks.token_ids,
@@ -221,12 +222,6 @@ class SweepResult:
                 decoded=self.decoded,
                 critical_sigma=self.critical_sigma,
             )
-            if directory.exists():
-                shutil.rmtree(directory)
-            os.replace(staging, directory)
-        except BaseException:
-            shutil.rmtree(staging, ignore_errors=True)
-            raise
         return directory
 
 
@@ -237,11 +232,14 @@ def read_sweep(directory: str | os.PathLike) -> SweepResult:
     directory = Path(directory)
     try:
         data = json.loads((directory / "sweep.json").read_text(encoding="utf-8"))
-        arrays = np.load(directory / "arrays.npz")
+        with np.load(directory / "arrays.npz") as npz:
+            arrays = {key: npz[key] for key in npz.files}
         text = (directory / "text.txt").read_text(encoding="utf-8")
+        vocab_path = directory / "vocab.json"
+        token_text = {int(k): v for k, v in json.loads(vocab_path.read_text(encoding="utf-8")).items()} if vocab_path.exists() else {}
     except FileNotFoundError as exc:
         raise ChunkscopeError(f"{directory.name} is not a sweep folder: {Path(exc.filename).name} is missing.") from None
-    except (ValueError, OSError) as exc:
+    except (ValueError, OSError, KeyError) as exc:
         raise ChunkscopeError(f"{directory.name} holds a damaged sweep: {exc}.") from None
     s = data["settings"]
     settings = SweepSettings(sigmas=tuple(s["sigmas"]), repeats=int(s["repeats"]), noise=s["noise"], seed=int(s["seed"]))
@@ -266,7 +264,15 @@ def read_sweep(directory: str | os.PathLike) -> SweepResult:
         latent_rms=float(data["latent_rms"]),
         elapsed_s=float(data["elapsed_s"]),
         decoded_chunks=int(data["decoded_chunks"]),
+        token_text=token_text,
     )
+
+
+def token_texts(tokenizer, *id_arrays: np.ndarray, vocab_size: int) -> dict[int, str]:
+    present = np.zeros(vocab_size, dtype=bool)
+    for ids in id_arrays:
+        present |= np.bincount(ids.ravel().astype(np.int64), minlength=vocab_size)[:vocab_size] > 0
+    return {int(i): token_display(tokenizer, int(i)) for i in np.flatnonzero(present)}
 
 
 def provenance(codec, chunks: Chunks, settings: SweepSettings, text_source: str = "") -> dict[str, Any]:
@@ -355,4 +361,5 @@ def run_sweep(
         latent_rms=encoded.latent_rms,
         elapsed_s=elapsed,
         decoded_chunks=n_chunks * repeats * n_sigma,
+        token_text=token_texts(codec.tokenizer, chunks.token_ids, decoded, vocab_size=codec.vocab_size),
     )

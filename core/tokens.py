@@ -23,8 +23,13 @@ class FragileType:
     common_wrong_count: int
 
 
-def fragile_types(result, tokenizer, min_count: int = 1) -> list[FragileType]:
+def fragile_types(result, tokenizer=None, min_count: int = 1) -> list[FragileType]:
     """Token types sorted from most fragile (lowest median critical sigma, then mean) to least."""
+    if tokenizer is not None:
+        def show(i: int) -> str:
+            return token_display(tokenizer, i)
+    else:
+        show = result.display
     ids = result.chunks.token_ids
     crit = result.critical_sigma
     wrong_decodes = result.decoded.astype(np.int64)
@@ -47,13 +52,13 @@ def fragile_types(result, tokenizer, min_count: int = 1) -> list[FragileType]:
         out.append(
             FragileType(
                 token_id=tid,
-                text=token_display(tokenizer, tid),
+                text=show(tid),
                 count=len(group),
                 broken=len(finite),
                 mean_critical_sigma=float(finite.mean()) if len(finite) else float("nan"),
                 median_critical_sigma=float(np.median(filled)),
                 common_wrong_id=common[0][0] if common else None,
-                common_wrong_text=token_display(tokenizer, common[0][0]) if common else "",
+                common_wrong_text=show(common[0][0]) if common else "",
                 common_wrong_count=common[0][1] if common else 0,
             )
         )

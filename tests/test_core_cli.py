@@ -41,7 +41,7 @@ def test_sweep_writes_files_and_refuses_to_overwrite(small_checkpoint, tmp_path,
     printed = capsys.readouterr().out
     assert "small" in printed and "99.9 %" in printed
     folder = out / "small"
-    assert sorted(p.name for p in folder.iterdir()) == ["arrays.npz", "curves.csv", "sweep.json", "text.txt", "tokens.csv"]
+    assert sorted(p.name for p in folder.iterdir()) == ["arrays.npz", "curves.csv", "sweep.json", "text.txt", "tokens.csv", "vocab.json"]
     data = json.loads((folder / "sweep.json").read_text())
     assert data["settings"]["sigmas"] == [0.0, 0.2, 0.4] and data["elapsed_s"] > 0 and data["decoded_chunks"] > 0
     before = (folder / "sweep.json").read_bytes()

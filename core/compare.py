@@ -1,0 +1,316 @@
+"""Compare checkpoints on one text: paired tests per sigma, tolerances side by side, and
+a character-level footing when the checkpoints tokenize differently.
+
+Pairing uses repeat 0 of each sweep (same text, same noise seed): per unit (token, or
+character when tokenizers or K differ) "A right / B right" at each sigma, tested with
+McNemar's test — exact binomial when the discordant count is below 25, else the
+chi-square form with continuity correction (common practice; both as in statsmodels).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Sequence
+
+import numpy as np
+
+from core.errors import ChunkscopeError, SweepCancelled
+from core.files import staged_folder
+from core.latent import encode_chunks
+from core.sweep import DEFAULT_SIGMAS, SweepResult, SweepSettings, read_sweep, run_sweep
+from core.text import chunk_text
+
+EXACT_BELOW = 25
+SCALE_WARNING_RATIO = 1.5
+
+
+def _binomial_cdf_half(k: int, n: int) -> float:
+    """P(X <= k) for X ~ Binomial(n, 1/2), summed in log space."""
+    if k >= n:
+        return 1.0
+    log_terms = [math.lgamma(n + 1) - math.lgamma(i + 1) - math.lgamma(n - i + 1) - n * math.log(2) for i in range(k + 1)]
+    top = max(log_terms)
+    return min(1.0, math.exp(top) * sum(math.exp(t - top) for t in log_terms))
+
+
+@dataclass
+class McNemar:
+    statistic: float
+    pvalue: float
+    method: str  # "exact" or "chi-square"
+
+
+def mcnemar(b: int, c: int, exact: bool | None = None, correction: bool = True) -> McNemar:
+    """McNemar's test on the discordant counts b (A right, B wrong) and c (A wrong, B right)."""
+    n = b + c
+    if exact is None:
+        exact = n < EXACT_BELOW
+    if exact:
+        if n == 0:
+            return McNemar(0.0, 1.0, "exact")
+        return McNemar(float(min(b, c)), min(1.0, 2.0 * _binomial_cdf_half(min(b, c), n)), "exact")
+    if n == 0:
+        return McNemar(0.0, 1.0, "chi-square")
+    diff = abs(b - c) - (1.0 if correction else 0.0)
+    stat = max(diff, 0.0) ** 2 / n
+    return McNemar(stat, math.erfc(math.sqrt(stat / 2.0)), "chi-square")
+
+
+def character_correctness(text_length: int, spans: np.ndarray, token_correct: np.ndarray) -> np.ndarray:
+    """Per character: correct when every token holding any of its bytes decoded correctly."""
+    chars = np.ones(text_length, dtype=bool)
+    lengths = spans[:, 1] - spans[:, 0]
+    owner = np.repeat(np.arange(len(spans)), lengths)
+    chars[: len(owner)] = token_correct[owner] if len(owner) else chars[:0]
+    empty = np.flatnonzero(lengths == 0)
+    for t in empty:  # a token holding part of a character: its failure spoils that character
+        if not token_correct[t]:
+            start = int(spans[t, 0])
+            if start < text_length:
+                chars[start] = False
+    return chars
+
+
+def unit_correctness(result: SweepResult, sigma_index: int, unit: str) -> np.ndarray:
+    correct = result.decoded[:, sigma_index].astype(np.int64) == result.chunks.token_ids
+    if unit == "token":
+        return correct
+    return character_correctness(len(result.chunks.text), result.chunks.spans, correct)
+
+
+def comparison_unit(a: SweepResult, b: SweepResult) -> str:
+    same = (
+        a.chunks.chunk_size == b.chunks.chunk_size
+        and len(a.chunks.token_ids) == len(b.chunks.token_ids)
+        and np.array_equal(a.chunks.token_ids, b.chunks.token_ids)
+        and np.array_equal(a.chunks.spans, b.chunks.spans)
+    )
+    return "token" if same else "character"
+
+
+@dataclass
+class PairedRow:
+    sigma: float
+    accuracy_a: float
+    accuracy_b: float
+    difference: float  # B - A, on the compared unit
+    a_only: int  # units A got right and B wrong
+    b_only: int
+    units: int
+    statistic: float
+    pvalue: float
+    method: str
+
+
+@dataclass
+class PairedComparison:
+    name_a: str
+    name_b: str
+    unit: str
+    rows: list[PairedRow]
+
+    def significant(self, alpha: float = 0.05) -> list[bool]:
+        return [r.pvalue < alpha for r in self.rows]
+
+
+def paired_comparison(a: SweepResult, b: SweepResult) -> PairedComparison:
+    if a.chunks.text_sha256 != b.chunks.text_sha256:
+        raise ChunkscopeError("the two sweeps were run on different texts, so they cannot be paired.")
+    if tuple(a.sigmas) != tuple(b.sigmas) or a.settings.seed != b.settings.seed or a.settings.noise != b.settings.noise:
+        raise ChunkscopeError("the two sweeps used different grids, seeds or noise models, so they cannot be paired.")
+    unit = comparison_unit(a, b)
+    rows = []
+    for i, sigma in enumerate(a.sigmas):
+        ca, cb = unit_correctness(a, i, unit), unit_correctness(b, i, unit)
+        only_a = int(np.sum(ca & ~cb))
+        only_b = int(np.sum(~ca & cb))
+        test = mcnemar(only_a, only_b)
+        rows.append(
+            PairedRow(
+                sigma=float(sigma), accuracy_a=float(ca.mean()), accuracy_b=float(cb.mean()),
+                difference=float(cb.mean() - ca.mean()), a_only=only_a, b_only=only_b, units=int(len(ca)),
+                statistic=test.statistic, pvalue=test.pvalue, method=test.method,
+            )
+        )
+    return PairedComparison(a.codec_name, b.codec_name, unit, rows)
+
+
+@dataclass
+class ToleranceRow:
+    name: str
+    sha256: str
+    latent_rms: float
+    accuracy_at_zero: float
+    absolute: list[dict]  # isotropic tolerances
+    data_scale: list[dict]
+
+
+@dataclass
+class Comparison:
+    """Every codec swept on the same text with the same seed, under isotropic and data-scale noise."""
+
+    settings: dict[str, Any]
+    isotropic: list[SweepResult]
+    data_scale: list[SweepResult]
+    tolerances: list[ToleranceRow]
+    paired: list[PairedComparison]  # each codec against the first, under the main noise model
+    main_noise: str
+    scale_warning: str | None
+
+    @property
+    def names(self) -> list[str]:
+        return [r.codec_name for r in self.data_scale]
+
+    def main_sweeps(self) -> list[SweepResult]:
+        return self.data_scale if self.main_noise == "data-scale" else self.isotropic
+
+    def to_json_dict(self) -> dict[str, Any]:
+        return {
+            "settings": self.settings,
+            "main_noise": self.main_noise,
+            "scale_warning": self.scale_warning,
+            "tolerances": [asdict(t) for t in self.tolerances],
+            "paired": [asdict(p) for p in self.paired],
+            "sweeps": {
+                "isotropic": [r.provenance for r in self.isotropic],
+                "data-scale": [r.provenance for r in self.data_scale],
+            },
+        }
+
+    def write(self, directory: str | os.PathLike, force: bool = False) -> Path:
+        """compare.json, tolerances.csv, paired.csv and every sweep folder, written atomically."""
+        directory = Path(directory)
+        with staged_folder(directory, force) as staging:
+            (staging / "compare.json").write_text(json.dumps(self.to_json_dict(), indent=1), encoding="utf-8")
+            (staging / "tolerances.csv").write_text(tolerance_csv(self), encoding="utf-8")
+            (staging / "paired.csv").write_text(paired_csv(self), encoding="utf-8")
+            for noise, sweeps in (("isotropic", self.isotropic), ("data-scale", self.data_scale)):
+                for r in sweeps:
+                    r.write(staging / "sweeps" / noise / r.codec_name)
+        return directory
+
+
+def tolerance_csv(comparison: Comparison) -> str:
+    lines = ["checkpoint,sha256,latent_rms,accuracy_at_sigma0,noise,level,sigma,status"]
+    for t in comparison.tolerances:
+        for noise, rows in (("isotropic", t.absolute), ("data-scale", t.data_scale)):
+            for row in rows:
+                sigma = "" if row["sigma"] is None else f"{row['sigma']:.6g}"
+                lines.append(f"{t.name},{t.sha256},{t.latent_rms:.6g},{t.accuracy_at_zero:.6f},{noise},{row['level']},{sigma},{row['status']}")
+    return "\n".join(lines) + "\n"
+
+
+def paired_csv(comparison: Comparison) -> str:
+    lines = ["a,b,unit,sigma,accuracy_a,accuracy_b,difference,a_only,b_only,units,statistic,pvalue,method"]
+    for p in comparison.paired:
+        for r in p.rows:
+            lines.append(
+                f"{p.name_a},{p.name_b},{p.unit},{r.sigma:.6g},{r.accuracy_a:.6f},{r.accuracy_b:.6f},{r.difference:.6f},"
+                f"{r.a_only},{r.b_only},{r.units},{r.statistic:.6g},{r.pvalue:.6g},{r.method}"
+            )
+    return "\n".join(lines) + "\n"
+
+
+def scale_warning(names: Sequence[str], rms: Sequence[float]) -> str | None:
+    if len(rms) < 2 or min(rms) <= 0:
+        return None
+    hi, lo = int(np.argmax(rms)), int(np.argmin(rms))
+    ratio = rms[hi] / rms[lo]
+    if ratio <= SCALE_WARNING_RATIO:
+        return None
+    return (
+        f"latent scales differ {ratio:.2f}x ({names[hi]} RMS {rms[hi]:.3g} vs {names[lo]} RMS {rms[lo]:.3g}): "
+        "an absolute-sigma win may be nothing but a larger latent; read the data-scale columns."
+    )
+
+
+def default_absolute_sigmas(relative: Sequence[float], rms: Sequence[float]) -> tuple[float, ...]:
+    """The relative grid stretched by the largest latent RMS, so the absolute sweep covers every codec."""
+    factor = float(max(rms)) if rms else 1.0
+    return tuple(round(s * factor, 6) for s in relative)
+
+
+def compare_codecs(
+    codecs: Sequence,
+    text: str,
+    sigmas: Sequence[float] = DEFAULT_SIGMAS,
+    absolute_sigmas: Sequence[float] | None = None,
+    repeats: int = 4,
+    seed: int = 0,
+    main_noise: str = "data-scale",
+    text_source: str = "",
+    progress: Callable[[int, int], None] | None = None,
+    should_stop: Callable[[], bool] | None = None,
+    on_sweep: Callable[[str, SweepResult], None] | None = None,
+) -> Comparison:
+    """Sweep every codec under data-scale and isotropic noise on the same text and seed."""
+    if len(codecs) < 2:
+        raise ChunkscopeError("a comparison needs at least two checkpoints.")
+    if main_noise not in ("data-scale", "isotropic"):
+        raise ChunkscopeError("a comparison's main noise model is data-scale or isotropic.")
+    chunked = [chunk_text(text, c, text_source or "the text") for c in codecs]
+    encoded = []
+    for codec, chunks in zip(codecs, chunked):
+        encoded.append(encode_chunks(codec, chunks, should_stop=should_stop))
+    rms = [e.latent_rms for e in encoded]
+    if absolute_sigmas is None:
+        absolute_sigmas = default_absolute_sigmas(sigmas, rms)
+    relative = SweepSettings(sigmas=tuple(sigmas), repeats=repeats, noise="data-scale", seed=seed).validated()
+    absolute = SweepSettings(sigmas=tuple(absolute_sigmas), repeats=repeats, noise="isotropic", seed=seed).validated()
+    per_sweep = sum(e.num_chunks for e in encoded)
+    total = per_sweep * (len(relative.sigmas) + len(absolute.sigmas)) * repeats
+    offset = [0]
+
+    def report(done_in_sweep: int, total_in_sweep: int, chunks_in_sweep: int, grid: int) -> None:
+        if progress is not None:
+            progress(offset[0] + done_in_sweep * chunks_in_sweep * grid * repeats // max(total_in_sweep, 1), total)
+
+    results: dict[str, list[SweepResult]] = {"data-scale": [], "isotropic": []}
+    for settings in (relative, absolute):
+        for codec, chunks, enc in zip(codecs, chunked, encoded):
+            n_grid = len(settings.sigmas)
+            result = run_sweep(
+                codec, chunks, settings, encoded=enc, text_source=text_source, should_stop=should_stop,
+                progress=lambda d, t, n=enc.num_chunks, g=n_grid: report(d, t, n, g),
+            )
+            offset[0] += enc.num_chunks * n_grid * repeats
+            results[settings.noise].append(result)
+            if on_sweep is not None:
+                on_sweep(settings.noise, result)
+    names = [c.name for c in codecs]
+    rows = []
+    for i, codec in enumerate(codecs):
+        iso, ds = results["isotropic"][i], results["data-scale"][i]
+        acc0 = ds.curves[0].token_accuracy if ds.sigmas[0] == 0 else float("nan")
+        rows.append(ToleranceRow(codec.name, codec.sha256, rms[i], acc0, [asdict(t) for t in iso.tolerances], [asdict(t) for t in ds.tolerances]))
+    main = results[main_noise]
+    paired = [paired_comparison(main[0], other) for other in main[1:]]
+    settings_dict = {
+        "relative_sigmas": list(relative.sigmas), "absolute_sigmas": list(absolute.sigmas), "repeats": repeats,
+        "seed": seed, "text_sha256": chunked[0].text_sha256, "text_source": text_source,
+        "checkpoints": [{"name": c.name, "sha256": c.sha256, "path": c.path} for c in codecs],
+    }
+    return Comparison(settings_dict, results["isotropic"], results["data-scale"], rows, paired, main_noise, scale_warning(names, rms))
+
+
+def read_comparison(directory: str | os.PathLike) -> Comparison:
+    """Reopen a comparison folder written by `Comparison.write`."""
+    directory = Path(directory)
+    try:
+        data = json.loads((directory / "compare.json").read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ChunkscopeError(f"{directory.name} is not a comparison folder: compare.json is missing.") from None
+    except ValueError as exc:
+        raise ChunkscopeError(f"{directory.name} holds a damaged compare.json: {exc}.") from None
+    names = [c["name"] for c in data["settings"]["checkpoints"]]
+    iso = [read_sweep(directory / "sweeps" / "isotropic" / n) for n in names]
+    ds = [read_sweep(directory / "sweeps" / "data-scale" / n) for n in names]
+    tolerances = [ToleranceRow(**t) for t in data["tolerances"]]
+    paired = [
+        PairedComparison(p["name_a"], p["name_b"], p["unit"], [PairedRow(**r) for r in p["rows"]]) for p in data["paired"]
+    ]
+    return Comparison(data["settings"], iso, ds, tolerances, paired, data["main_noise"], data.get("scale_warning"))

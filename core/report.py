@@ -1,0 +1,225 @@
+"""One self-contained HTML report: inline SVG plots, tables, tests, fragile tokens, provenance.
+
+No script, no stylesheet link, no image file: it opens in any browser offline.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from html import escape
+from pathlib import Path
+from typing import Sequence
+
+import core
+from core.files import write_text_atomic  # noqa: F401  (re-exported for callers)
+from core.compare import Comparison
+from core.svgplot import Chart, Marker, Series, render
+from core.sweep import SweepResult
+from core.tokens import fragile_types
+from core.trend import TrendPoint, sort_points
+
+STYLE = """
+body{font-family:"DejaVu Sans",Helvetica,Arial,sans-serif;color:#22262b;margin:28px auto;max-width:980px;line-height:1.45;font-size:14px}
+h1{font-size:22px;margin-bottom:4px}h2{font-size:17px;border-bottom:1px solid #d5d9de;padding-bottom:3px;margin-top:30px}
+table{border-collapse:collapse;margin:8px 0 14px;font-size:12.5px}th,td{border:1px solid #d5d9de;padding:3px 8px;text-align:right}
+th{background:#f1f3f5}td.l,th.l{text-align:left}.muted{color:#6b727b}.warn{background:#fff4e0;border-left:4px solid #c2571a;padding:6px 10px}
+figure{margin:10px 0 18px}figcaption{color:#6b727b;font-size:12px}code{font-size:12px}.sig{font-weight:bold;color:#8a3b76}
+"""
+
+
+@dataclass
+class Section:
+    anchor: str
+    title: str
+    html: str
+    kind: str  # "plot" or "table" or "text"
+
+
+def _pct(x: float | None, digits: int = 3) -> str:
+    return "—" if x is None or (isinstance(x, float) and math.isnan(x)) else f"{100 * x:.{digits}f} %"
+
+
+def _tol(t: dict) -> str:
+    if t["status"] == "below_at_zero":
+        return "fails at 0"
+    if t["status"] == "above_grid":
+        return f"&gt; {t['sigma']:.4g}"
+    return f"{t['sigma']:.4g}"
+
+
+def provenance_caption(sweeps: Sequence[SweepResult]) -> str:
+    s = sweeps[0]
+    names = ", ".join(f"{r.codec_name} ({r.provenance['codec']['sha256'][:10]})" for r in sweeps)
+    return (
+        f"{names}; text {s.chunks.text_sha256[:10]} ({s.chunks.num_tokens:,} tokens); {s.settings.noise} noise; "
+        f"seed {s.settings.seed}; {s.settings.repeats} repeats; chunkscope {core.__version__}"
+    )
+
+
+def accuracy_chart(sweeps: Sequence[SweepResult], title: str = "Token accuracy") -> Chart:
+    noise = sweeps[0].settings.noise
+    series = [
+        Series(r.codec_name, r.sigmas, [c.token_accuracy for c in r.curves], band=([c.accuracy_low for c in r.curves], [c.accuracy_high for c in r.curves]))
+        for r in sweeps
+    ]
+    markers = [Marker(t.sigma, f"{r.codec_name} 99 %") for r in sweeps for t in r.tolerances if t.level == 0.99 and t.status == "ok"]
+    return Chart(f"{title} ({noise} noise, Wilson 95 % band)", _sigma_label(noise), "token accuracy", series, markers=markers,
+                 hlines=[(0.999, "99.9 %"), (0.99, "99 %"), (0.9, "90 %")], caption=provenance_caption(sweeps))
+
+
+def error_chart(sweeps: Sequence[SweepResult]) -> Chart:
+    noise = sweeps[0].settings.noise
+    floor = min(0.5 / max(c.tokens, 1) for r in sweeps for c in r.curves)
+    series = [Series(r.codec_name, r.sigmas, [max(1 - c.token_accuracy, floor) for c in r.curves]) for r in sweeps]
+    return Chart(f"Token error rate, log scale ({noise} noise)", _sigma_label(noise), "1 − token accuracy", series, logy=True,
+                 hlines=[(1e-3, "0.1 % (99.9 % level)"), (1e-2, "1 %"), (0.1, "10 %")], caption=provenance_caption(sweeps) + f"; zero errors drawn at {floor:.1e}")
+
+
+def chunk_chart(sweeps: Sequence[SweepResult]) -> Chart:
+    noise = sweeps[0].settings.noise
+    series = [Series(r.codec_name, r.sigmas, [c.chunk_exact_rate for c in r.curves]) for r in sweeps]
+    return Chart(f"Chunk exact match ({noise} noise)", _sigma_label(noise), "chunks decoded exactly", series, caption=provenance_caption(sweeps))
+
+
+def _sigma_label(noise: str) -> str:
+    return {"data-scale": "σ relative to each dimension's RMS", "isotropic": "σ (absolute)", "posterior": "σ (in posterior std units)"}[noise]
+
+
+def _tolerance_table_single(sweeps: Sequence[SweepResult]) -> str:
+    rows = ["<table><tr><th class=l>checkpoint</th><th>accuracy at σ=0</th><th>99.9 %</th><th>99 %</th><th>90 %</th><th>latent RMS</th><th class=l>noise</th></tr>"]
+    for r in sweeps:
+        acc0 = r.curves[0].token_accuracy if r.sigmas[0] == 0 else float("nan")
+        tols = "".join(f"<td>{_tol({'sigma': t.sigma, 'status': t.status})}</td>" for t in r.tolerances)
+        rows.append(f"<tr><td class=l>{escape(r.codec_name)}</td><td>{_pct(acc0)}</td>{tols}<td>{r.latent_rms:.4g}</td><td class=l>{r.settings.noise}</td></tr>")
+    rows.append("</table>")
+    return "".join(rows)
+
+
+def _tolerance_table_comparison(comparison: Comparison) -> str:
+    head = ("<table><tr><th class=l rowspan=2>checkpoint</th><th rowspan=2>accuracy at σ=0</th><th rowspan=2>latent RMS</th>"
+            "<th colspan=3>absolute σ (isotropic)</th><th colspan=3>relative σ (data-scale)</th></tr>"
+            "<tr><th>99.9 %</th><th>99 %</th><th>90 %</th><th>99.9 %</th><th>99 %</th><th>90 %</th></tr>")
+    rows = [head]
+    for t in comparison.tolerances:
+        cells = "".join(f"<td>{_tol(x)}</td>" for x in t.absolute) + "".join(f"<td>{_tol(x)}</td>" for x in t.data_scale)
+        rows.append(f"<tr><td class=l>{escape(t.name)}</td><td>{_pct(t.accuracy_at_zero)}</td><td>{t.latent_rms:.4g}</td>{cells}</tr>")
+    rows.append("</table>")
+    warning = f"<p class=warn>{escape(comparison.scale_warning)}</p>" if comparison.scale_warning else ""
+    return warning + "".join(rows)
+
+
+def _paired_sections(comparison: Comparison) -> list[Section]:
+    out = []
+    for i, p in enumerate(comparison.paired):
+        xs = [r.sigma for r in p.rows]
+        diff = [r.difference for r in p.rows]
+        sig = [r.difference if r.pvalue < 0.05 else float("nan") for r in p.rows]
+        chart = Chart(
+            f"Accuracy difference {p.name_b} − {p.name_a} (per {p.unit})", _sigma_label(comparison.main_noise), "difference in accuracy",
+            [Series("difference", xs, diff), Series("p < 0.05 (McNemar)", xs, sig, color="#8a3b76", points=True)],
+            hlines=[(0.0, "no difference")], caption=provenance_caption(comparison.main_sweeps()),
+        )
+        out.append(Section(f"diff-{i}", f"Difference curve: {p.name_b} vs {p.name_a}", f"<figure>{render(chart)}</figure>", "plot"))
+        rows = [f"<p class=muted>Paired on repeat 0 of each sweep, per {p.unit}. McNemar's test: exact binomial when fewer than 25 discordant pairs, "
+                "else chi-square with continuity correction." + (" Characters of one token are not independent, so these p-values are optimistic." if p.unit == "character" else "") + "</p>",
+                f"<table><tr><th>σ</th><th>{escape(p.name_a)}</th><th>{escape(p.name_b)}</th><th>difference</th><th>only {escape(p.name_a)} right</th>"
+                f"<th>only {escape(p.name_b)} right</th><th>statistic</th><th>p</th><th class=l>test</th></tr>"]
+        for r in p.rows:
+            cls = " class=sig" if r.pvalue < 0.05 else ""
+            rows.append(f"<tr><td>{r.sigma:.4g}</td><td>{_pct(r.accuracy_a)}</td><td>{_pct(r.accuracy_b)}</td><td{cls}>{100 * r.difference:+.3f}</td>"
+                        f"<td>{r.a_only}</td><td>{r.b_only}</td><td>{r.statistic:.4g}</td><td{cls}>{r.pvalue:.3g}</td><td class=l>{r.method}</td></tr>")
+        rows.append("</table>")
+        out.append(Section(f"tests-{i}", f"Paired tests: {p.name_b} vs {p.name_a}", "".join(rows), "table"))
+    return out
+
+
+def _fragile_section(sweeps: Sequence[SweepResult], top: int = 15) -> Section:
+    parts = []
+    for r in sweeps:
+        types = [f for f in fragile_types(r) if f.broken > 0][:top]
+        parts.append(f"<h3>{escape(r.codec_name)}</h3>")
+        if not types:
+            parts.append("<p class=muted>No token broke on this grid.</p>")
+            continue
+        parts.append("<table><tr><th class=l>token</th><th>count</th><th>broke</th><th>median critical σ</th><th>mean critical σ</th><th class=l>most common wrong decode</th></tr>")
+        for f in types:
+            med = "never" if math.isinf(f.median_critical_sigma) else f"{f.median_critical_sigma:.4g}"
+            parts.append(f"<tr><td class=l><code>{escape(repr(f.text))}</code></td><td>{f.count}</td><td>{f.broken}</td><td>{med}</td>"
+                         f"<td>{f.mean_critical_sigma:.4g}</td><td class=l><code>{escape(repr(f.common_wrong_text))}</code> ×{f.common_wrong_count}</td></tr>")
+        parts.append("</table>")
+    return Section("fragile", "Most fragile tokens", "".join(parts), "table")
+
+
+def _trend_sections(points: Sequence[TrendPoint], noise: str) -> list[Section]:
+    good = [p for p in sort_points(list(points)) if p.error is None and p.step is not None]
+    series = []
+    for level in (0.999, 0.99, 0.9):
+        xs = [p.step for p in good if p.tolerances.get(level, {}).get("sigma") is not None]
+        ys = [p.tolerances[level]["sigma"] for p in good if p.tolerances.get(level, {}).get("sigma") is not None]
+        series.append(Series(f"{level * 100:g} % tolerance", xs, ys))
+    chart = Chart(f"Tolerance through training ({noise} noise)", "training step", "σ", series)
+    rows = ["<table><tr><th class=l>checkpoint</th><th>step</th><th class=l>step from</th><th>accuracy at σ=0</th><th>99.9 %</th><th>99 %</th><th>90 %</th><th class=l>problem</th></tr>"]
+    for p in sort_points(list(points)):
+        tols = "".join(f"<td>{_tol(p.tolerances[level]) if level in p.tolerances else '—'}</td>" for level in (0.999, 0.99, 0.9))
+        rows.append(f"<tr><td class=l>{escape(p.name)}</td><td>{'' if p.step is None else p.step}</td><td class=l>{p.step_source}</td>"
+                    f"<td>{_pct(p.accuracy_at_zero)}</td>{tols}<td class=l>{escape(p.error or '')}</td></tr>")
+    rows.append("</table>")
+    return [Section("trend-plot", "Tolerance through training", f"<figure>{render(chart)}</figure>", "plot"),
+            Section("trend-table", "Training-run table", "".join(rows), "table")]
+
+
+def _provenance_section(sweeps: Sequence[SweepResult]) -> Section:
+    rows = ["<table><tr><th class=l>checkpoint</th><th class=l>sha256</th><th class=l>noise</th><th>repeats</th><th>seed</th><th class=l>grid</th><th class=l>text sha256</th><th>tokens</th><th class=l>made</th></tr>"]
+    for r in sweeps:
+        p = r.provenance
+        grid = ", ".join(f"{s:g}" for s in r.sigmas)
+        rows.append(f"<tr><td class=l>{escape(r.codec_name)}</td><td class=l><code>{p['codec']['sha256']}</code></td><td class=l>{r.settings.noise}</td>"
+                    f"<td>{r.settings.repeats}</td><td>{r.settings.seed}</td><td class=l>{grid}</td><td class=l><code>{r.chunks.text_sha256[:16]}…</code></td>"
+                    f"<td>{r.chunks.num_tokens:,}</td><td class=l>{escape(p.get('created', ''))}, chunkscope {escape(p.get('version', ''))}, torch {escape(p.get('torch', ''))}</td></tr>")
+    rows.append("</table>")
+    return Section("provenance", "Provenance", "".join(rows), "table")
+
+
+def build_report(
+    sweeps: Sequence[SweepResult] = (),
+    comparison: Comparison | None = None,
+    trend_points: Sequence[TrendPoint] = (),
+    trend_noise: str = "data-scale",
+    title: str = "chunkscope report",
+) -> str:
+    """The report's HTML. Give sweeps of one noise model, or a comparison, and/or training-run points."""
+    sections: list[Section] = []
+    main = list(comparison.main_sweeps()) if comparison is not None else list(sweeps)
+    if comparison is not None:
+        sections.append(Section("tolerances", "Tolerances, absolute and data-scale", _tolerance_table_comparison(comparison), "table"))
+    elif main:
+        sections.append(Section("tolerances", "Tolerances", _tolerance_table_single(main), "table"))
+    if main:
+        sections.append(Section("accuracy", "Token accuracy against noise", f"<figure>{render(accuracy_chart(main))}</figure>", "plot"))
+        sections.append(Section("error-rate", "Error rate on a log axis", f"<figure>{render(error_chart(main))}</figure>", "plot"))
+        sections.append(Section("chunks", "Chunk exact match", f"<figure>{render(chunk_chart(main))}</figure>", "plot"))
+    if comparison is not None:
+        other = comparison.isotropic if comparison.main_noise == "data-scale" else comparison.data_scale
+        sections.append(Section("accuracy-other", f"Token accuracy under {other[0].settings.noise} noise", f"<figure>{render(accuracy_chart(other))}</figure>", "plot"))
+        sections.extend(_paired_sections(comparison))
+    if main:
+        sections.append(_fragile_section(main))
+    if trend_points:
+        sections.extend(_trend_sections(trend_points, trend_noise))
+    prov_sweeps = main + (list(comparison.isotropic if comparison.main_noise == "data-scale" else comparison.data_scale) if comparison else [])
+    prov_sweeps += [p.result for p in trend_points if p.result is not None]
+    if prov_sweeps:
+        sections.append(_provenance_section(prov_sweeps))
+    if not sections:
+        raise ValueError("a report needs at least one sweep, comparison or training-run point")
+    made = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    contents = "".join(f'<li><a href="#{s.anchor}" data-kind="{s.kind}">{escape(s.title)}</a></li>' for s in sections)
+    body = "".join(f'<section id="{s.anchor}" data-kind="{s.kind}"><h2>{escape(s.title)}</h2>{s.html}</section>' for s in sections)
+    return (
+        "<!DOCTYPE html>\n<html lang=en><head><meta charset=utf-8>"
+        f"<title>{escape(title)}</title><style>{STYLE}</style></head><body>"
+        f"<h1>{escape(title)}</h1><p class=muted>Made {made} by chunkscope {core.__version__}. Self-contained: every plot is inline SVG.</p>"
+        f"<nav><ol id=contents>{contents}</ol></nav>{body}</body></html>\n"
+    )
