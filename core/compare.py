@@ -56,7 +56,7 @@ def mcnemar(b: int, c: int, exact: bool | None = None, correction: bool = True) 
     if n == 0:
         return McNemar(0.0, 1.0, "chi-square")
     diff = abs(b - c) - (1.0 if correction else 0.0)
-    stat = max(diff, 0.0) ** 2 / n
+    stat = diff * diff / n  # as statsmodels: Edwards' correction, not clipped at zero
     return McNemar(stat, math.erfc(math.sqrt(stat / 2.0)), "chi-square")
 
 
