@@ -25,7 +25,7 @@ body{font-family:"DejaVu Sans",Helvetica,Arial,sans-serif;color:#22262b;margin:2
 h1{font-size:22px;margin-bottom:4px}h2{font-size:17px;border-bottom:1px solid #d5d9de;padding-bottom:3px;margin-top:30px}
 table{border-collapse:collapse;margin:8px 0 14px;font-size:12.5px}th,td{border:1px solid #d5d9de;padding:3px 8px;text-align:right}
 th{background:#f1f3f5}td.l,th.l{text-align:left}.muted{color:#6b727b}.warn{background:#fff4e0;border-left:4px solid #c2571a;padding:6px 10px}
-figure{margin:10px 0 18px}figcaption{color:#6b727b;font-size:12px}code{font-size:12px}.sig{font-weight:bold;color:#8a3b76}
+section{overflow-x:auto}figure{margin:10px 0 18px}figcaption{color:#6b727b;font-size:12px}code{font-size:12px}.sig{font-weight:bold;color:#8a3b76}
 """
 
 
@@ -66,7 +66,7 @@ def accuracy_chart(sweeps: Sequence[SweepResult], title: str = "Token accuracy")
     ]
     markers = [Marker(t.sigma, f"{r.codec_name} 99 %") for r in sweeps for t in r.tolerances if t.level == 0.99 and t.status == "ok"]
     return Chart(f"{title} ({noise} noise, Wilson 95 % band)", _sigma_label(noise), "token accuracy", series, markers=markers,
-                 hlines=[(0.999, "99.9 %"), (0.99, "99 %"), (0.9, "90 %")], caption=provenance_caption(sweeps))
+                 hlines=[(0.99, "99 %"), (0.9, "90 %")], caption=provenance_caption(sweeps))
 
 
 def error_chart(sweeps: Sequence[SweepResult]) -> Chart:
@@ -121,7 +121,7 @@ def _paired_sections(comparison: Comparison) -> list[Section]:
             [Series("difference", xs, diff), Series("p < 0.05 (McNemar)", xs, sig, color="#8a3b76", points=True)],
             hlines=[(0.0, "no difference")], caption=provenance_caption(comparison.main_sweeps()),
         )
-        out.append(Section(f"diff-{i}", f"Difference curve: {p.name_b} vs {p.name_a}", f"<figure>{render(chart)}</figure>", "plot"))
+        out.append(Section(f"diff-{i}", f"Difference curve: {p.name_b} vs {p.name_a}", figure(chart), "plot"))
         rows = [f"<p class=muted>Paired on repeat 0 of each sweep, per {p.unit}. McNemar's test: exact binomial when fewer than 25 discordant pairs, "
                 "else chi-square with continuity correction." + (" Characters of one token are not independent, so these p-values are optimistic." if p.unit == "character" else "") + "</p>",
                 f"<table><tr><th>σ</th><th>{escape(p.name_a)}</th><th>{escape(p.name_b)}</th><th>difference</th><th>only {escape(p.name_a)} right</th>"
@@ -166,7 +166,7 @@ def _trend_sections(points: Sequence[TrendPoint], noise: str) -> list[Section]:
         rows.append(f"<tr><td class=l>{escape(p.name)}</td><td>{'' if p.step is None else p.step}</td><td class=l>{p.step_source}</td>"
                     f"<td>{_pct(p.accuracy_at_zero)}</td>{tols}<td class=l>{escape(p.error or '')}</td></tr>")
     rows.append("</table>")
-    return [Section("trend-plot", "Tolerance through training", f"<figure>{render(chart)}</figure>", "plot"),
+    return [Section("trend-plot", "Tolerance through training", figure(chart), "plot"),
             Section("trend-table", "Training-run table", "".join(rows), "table")]
 
 
@@ -180,6 +180,12 @@ def _provenance_section(sweeps: Sequence[SweepResult]) -> Section:
                     f"<td>{r.chunks.num_tokens:,}</td><td class=l>{escape(p.get('created', ''))}, chunkscope {escape(p.get('version', ''))}, torch {escape(p.get('torch', ''))}</td></tr>")
     rows.append("</table>")
     return Section("provenance", "Provenance", "".join(rows), "table")
+
+
+def figure(chart: Chart) -> str:
+    """A chart as inline SVG with its provenance as a wrapping HTML caption."""
+    caption, chart.caption = chart.caption, ""
+    return f"<figure>{render(chart)}" + (f"<figcaption>{escape(caption)}</figcaption>" if caption else "") + "</figure>"
 
 
 def build_report(
@@ -197,12 +203,12 @@ def build_report(
     elif main:
         sections.append(Section("tolerances", "Tolerances", _tolerance_table_single(main), "table"))
     if main:
-        sections.append(Section("accuracy", "Token accuracy against noise", f"<figure>{render(accuracy_chart(main))}</figure>", "plot"))
-        sections.append(Section("error-rate", "Error rate on a log axis", f"<figure>{render(error_chart(main))}</figure>", "plot"))
-        sections.append(Section("chunks", "Chunk exact match", f"<figure>{render(chunk_chart(main))}</figure>", "plot"))
+        sections.append(Section("accuracy", "Token accuracy against noise", figure(accuracy_chart(main)), "plot"))
+        sections.append(Section("error-rate", "Error rate on a log axis", figure(error_chart(main)), "plot"))
+        sections.append(Section("chunks", "Chunk exact match", figure(chunk_chart(main)), "plot"))
     if comparison is not None:
         other = comparison.isotropic if comparison.main_noise == "data-scale" else comparison.data_scale
-        sections.append(Section("accuracy-other", f"Token accuracy under {other[0].settings.noise} noise", f"<figure>{render(accuracy_chart(other))}</figure>", "plot"))
+        sections.append(Section("accuracy-other", f"Token accuracy under {other[0].settings.noise} noise", figure(accuracy_chart(other)), "plot"))
         sections.extend(_paired_sections(comparison))
     if main:
         sections.append(_fragile_section(main))

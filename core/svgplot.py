@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import textwrap
 from dataclasses import dataclass, field
 from html import escape
 from typing import Sequence
@@ -42,7 +43,7 @@ class Chart:
     hlines: list[tuple[float, str]] = field(default_factory=list)
     caption: str = ""
     ylim: tuple[float, float] | None = None
-    width: int = 680
+    width: int = 780
     height: int = 360
 
 
@@ -72,7 +73,9 @@ def _fmt(v: float) -> str:
 
 def render(chart: Chart) -> str:
     w, h = chart.width, chart.height
-    left, right, top, bottom = 64, 16, 34, 52 + (16 if chart.caption else 0)
+    caption_lines = textwrap.wrap(chart.caption, 120) if chart.caption else []
+    legend_width = min(200, max([7 * len(s.name) + 34 for s in chart.series], default=0))
+    left, right, top, bottom = 64, 16 + legend_width, 34, 52 + 14 * len(caption_lines)
     pw, ph = w - left - right, h - top - bottom
     xs = [x for s in chart.series for x in s.xs if math.isfinite(x)] + [m.x for m in chart.markers if math.isfinite(m.x)]
     ys = [y for s in chart.series for y in s.ys if math.isfinite(y) and (not chart.logy or y > 0)]
@@ -155,14 +158,13 @@ def render(chart: Chart) -> str:
             out.append(f'<line x1="{x:.1f}" x2="{x:.1f}" y1="{top}" y2="{top + ph}" stroke="{m.color}" stroke-dasharray="4 3"/>')
             out.append(f'<text x="{x + 3:.1f}" y="{top + 12}" fill="{m.color}" font-size="10">{escape(m.label)}</text>')
     out.append("</g>")
-    lx, ly = left + 8, top + ph - 8 - 14 * (len(chart.series) - 1)
+    lx, ly = left + pw + 12, top + 12
     for i, s in enumerate(chart.series):
         color = s.color or PALETTE[i % len(PALETTE)]
-        y = ly + 14 * i
-        out.append(f'<rect x="{lx - 2}" y="{y - 10}" width="{8 + 7 * len(s.name) + 22}" height="14" fill="white" fill-opacity="0.85"/>')
-        out.append(f'<line x1="{lx}" x2="{lx + 16}" y1="{y - 3}" y2="{y - 3}" stroke="{color}" stroke-width="2"/>')
+        y = ly + 16 * i
+        out.append(f'<line x1="{lx}" x2="{lx + 16}" y1="{y - 4}" y2="{y - 4}" stroke="{color}" stroke-width="2"/>')
         out.append(f'<text x="{lx + 22}" y="{y}" fill="{INK}">{escape(s.name)}</text>')
-    if chart.caption:
-        out.append(f'<text x="{left}" y="{h - 8}" fill="{MUTED}" font-size="10">{escape(chart.caption)}</text>')
+    for i, line in enumerate(caption_lines):
+        out.append(f'<text x="{left}" y="{h - 8 - 14 * (len(caption_lines) - 1 - i)}" fill="{MUTED}" font-size="10">{escape(line)}</text>')
     out.append("</svg>")
     return "\n".join(out)
