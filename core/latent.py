@@ -85,12 +85,12 @@ def _block_seed(seed: int, repeat: int, block: int) -> int:
 
 
 def draw_eps(seed: int, repeat: int, start: int, stop: int, dim: int) -> torch.Tensor:
-    """ε for chunks start..stop (start a multiple of NOISE_BLOCK) in repeat `repeat`."""
-    if start % NOISE_BLOCK:
-        raise ValueError("noise is drawn in whole blocks; start must be a multiple of NOISE_BLOCK")
+    """ε for chunks start..stop in repeat `repeat`; any range gives the same rows as the whole."""
+    first = start - start % NOISE_BLOCK
     parts = []
-    for block_start in range(start, stop, NOISE_BLOCK):
+    for block_start in range(first, stop, NOISE_BLOCK):
         generator = torch.Generator().manual_seed(_block_seed(seed, repeat, block_start // NOISE_BLOCK))
-        full = torch.randn(NOISE_BLOCK, dim, generator=generator)
-        parts.append(full[: min(NOISE_BLOCK, stop - block_start)])
-    return torch.cat(parts) if parts else torch.zeros(0, dim)
+        parts.append(torch.randn(NOISE_BLOCK, dim, generator=generator))
+    if not parts:
+        return torch.zeros(0, dim)
+    return torch.cat(parts)[start - first : stop - first]

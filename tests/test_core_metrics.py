@@ -143,3 +143,9 @@ def test_nearest_neighbour_half_distance_on_a_worked_example():
     # worked example: points 0, 1, 3 on a line -> nearest distances 1, 1, 2 -> halves 0.5, 0.5, 1
     points = torch.tensor([[0.0, 0.0], [1.0, 0.0], [3.0, 0.0]])
     assert nearest_distinct_half_distance(points, block=2).tolist() == [0.5, 0.5, 1.0]
+
+
+def test_any_range_of_noise_matches_the_whole():
+    whole = draw_eps(5, 0, 0, 3 * NOISE_BLOCK, 4)
+    assert torch.equal(draw_eps(5, 0, 100, 700, 4), whole[100:700])
+    assert torch.equal(draw_eps(5, 0, 300, 301, 4), whole[300:301])
