@@ -1,0 +1,475 @@
+"""Tolerance through a training run: every checkpoint of a folder swept in a worker, each
+point drawn as soon as it is measured; a checkpoint that cannot be read is listed with its
+one-sentence problem and the rest are still measured (core.trend)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6.QtCore import Qt, Signal
+from PySide6.QtGui import QColor
+from PySide6.QtWidgets import (
+    QAbstractItemView, QCheckBox, QComboBox, QDoubleSpinBox, QFileDialog, QFrame, QHBoxLayout,
+    QHeaderView, QProgressBar, QPushButton, QSpinBox, QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout,
+    QWidget,
+)
+
+import core
+from app.controls import caption, spin_box
+from app.export import add_export_menu
+from app.style import PALETTE, fmt_percent, legend, pen, plot_widget
+from app.workers import Runner, Task
+from core.errors import ChunkscopeError
+from core.latent import NOISE_MODELS
+from core.sweep import SweepSettings
+from core.text import demo_text
+from core.trend import TrendPoint, checkpoints_in, sort_points, trend
+from core.views import sigma_grid
+
+DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 12, "spacing": "log", "zero": True, "repeats": 2,
+            "noise": "data-scale", "seed": 0}
+LEVELS = (0.999, 0.99, 0.9)
+LEVEL_NAMES = {0.999: "99.9 %", 0.99: "99 %", 0.9: "90 %"}
+LEVEL_STYLE = {0.999: (Qt.PenStyle.SolidLine, "o"), 0.99: (Qt.PenStyle.DashLine, "s"), 0.9: (Qt.PenStyle.DotLine, "t")}
+COLUMNS = ("checkpoint", "step", "step from", "accuracy at σ = 0", "99.9 %", "99 %", "90 %", "latent RMS", "problem")
+
+
+
+
+def tolerance_text(t: dict | None) -> str:
+    if not t:
+        return "—"
+    if t.get("status") == "below_at_zero":
+        return "fails at 0"
+    if t.get("sigma") is None:
+        return "—"
+    return f"> {t['sigma']:.4g}" if t.get("status") == "above_grid" else f"{t['sigma']:.4g}"
+
+
+class _Cell(QTableWidgetItem):
+    """A table cell that sorts by a number (missing values last)."""
+
+    def __init__(self, text: str, value: float | None = None, right: bool = True):
+        super().__init__(text)
+        self.value = float("inf") if value is None or not np.isfinite(value) else float(value)
+        if right:
+            self.setTextAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
+
+    def __lt__(self, other: QTableWidgetItem) -> bool:
+        if isinstance(other, _Cell) and (self.value != float("inf") or other.value != float("inf")):
+            return self.value < other.value
+        return self.text() < other.text()
+
+
+def _trend(task: Task, folder: str, text: str, settings: SweepSettings, source: str) -> list[TrendPoint]:
+    points = []
+    for point in trend(folder, text, settings, text_source=source, should_stop=task.should_stop, progress=task.report):
+        points.append(point)
+        task.partial.emit(point)
+    return points
+
+
+class TrendPanel(QWidget):
+    """Follow tolerance through a training run.
+
+    The window feeds the evaluation text with `set_text`; `run_folder(path)` (or the Choose
+    folder button) measures every checkpoint in it; `set_points` shows saved points."""
+
+    error = Signal(str)
+    point_added = Signal(object)  # a TrendPoint, as soon as it is measured
+    finished = Signal(list)  # every TrendPoint of the run
+    running_changed = Signal(bool)
+
+    def __init__(self, runner: Runner | None = None, parent: QWidget | None = None):
+        super().__init__(parent)
+        self.setObjectName("page")
+        self.runner = runner or Runner(self)
+        self.text = ""
+        self.text_source = ""
+        self.folder = ""
+        self.points: list[TrendPoint] = []
+        self.settings_used: SweepSettings | None = None
+        self._task: Task | None = None
+        self._generation = 0
+        self._build()
+        self.restore(DEFAULTS)
+        self._redraw()
+
+    # ---- layout --------------------------------------------------------------------------
+
+    def _build(self) -> None:
+        outer = QVBoxLayout(self)
+        outer.setContentsMargins(14, 12, 14, 12)
+        outer.setSpacing(8)
+
+        controls = QFrame()
+        controls.setObjectName("card")
+        cv = QVBoxLayout(controls)
+        cv.setContentsMargins(14, 8, 14, 8)
+        cv.setSpacing(6)
+        top = QHBoxLayout()
+        top.setSpacing(8)
+        self.choose_button = QPushButton("Choose folder…")
+        self.choose_button.clicked.connect(self.choose_folder)
+        top.addWidget(self.choose_button)
+        self.folder_label = caption("a folder of .safetensors checkpoints from one training run; the step comes from "
+                                     "each card, else from the file name")
+        self.folder_label.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        top.addWidget(self.folder_label, 1)
+        cv.addLayout(top)
+
+        row = QHBoxLayout()
+        row.setSpacing(8)
+        self.start = spin_box(QDoubleSpinBox(), 64)
+        self.start.setDecimals(4)
+        self.start.setRange(0.0, 1e4)
+        self.stop = spin_box(QDoubleSpinBox(), 64)
+        self.stop.setDecimals(4)
+        self.stop.setRange(0.0, 1e4)
+        self.points_box = spin_box(QSpinBox(), 44)
+        self.points_box.setRange(1, 400)
+        self.spacing = QComboBox()
+        self.spacing.addItems(["log", "linear"])
+        self.zero = QCheckBox("and 0")
+        self.zero.setToolTip("accuracy at σ = 0 needs 0 on the grid")
+        self.repeats = spin_box(QSpinBox(), 48)
+        self.repeats.setRange(1, 1000)
+        self.noise = QComboBox()
+        self.noise.addItems(list(NOISE_MODELS))
+        self.seed = spin_box(QSpinBox(), 64)
+        self.seed.setRange(0, 2**31 - 1)
+        for label, widget in (("σ from", self.start), ("to", self.stop), ("points", self.points_box),
+                              ("spacing", self.spacing)):
+            row.addWidget(caption(label))
+            row.addWidget(widget)
+        row.addWidget(self.zero)
+        row.addSpacing(10)
+        for label, widget in (("repeats", self.repeats), ("noise", self.noise), ("seed", self.seed)):
+            row.addWidget(caption(label))
+            row.addWidget(widget)
+        row.addSpacing(10)
+        self.run_button = QPushButton("Measure run")
+        self.run_button.setObjectName("primary")
+        self.run_button.clicked.connect(lambda: self.run_folder(self.folder) if self.folder else self.choose_folder())
+        self.cancel_button = QPushButton("Cancel")
+        self.cancel_button.clicked.connect(self.cancel)
+        row.addWidget(self.run_button)
+        row.addWidget(self.cancel_button)
+        self.progress = QProgressBar()
+        self.progress.setTextVisible(False)
+        self.progress.setFixedHeight(6)
+        self.progress.setMinimumWidth(90)
+        row.addWidget(self.progress, 1)
+        cv.addLayout(row)
+        outer.addWidget(controls)
+
+        self.status = caption("")
+        self.status.setWordWrap(True)
+        outer.addWidget(self.status)
+
+        plots = QWidget()
+        pl = QHBoxLayout(plots)
+        pl.setContentsMargins(0, 0, 0, 0)
+        pl.setSpacing(10)
+        self.tolerance_plot = plot_widget("Tolerance through training", "training step", "σ")
+        self.accuracy_plot = plot_widget("Token accuracy at σ = 0", "training step", "accuracy")
+        self.accuracy_plot.getPlotItem().setXLink(self.tolerance_plot.getPlotItem())
+        for plot, name in ((self.tolerance_plot, "trend-tolerance"), (self.accuracy_plot, "trend-accuracy")):
+            plot.setObjectName("card")
+            for axis in ("left", "bottom"):
+                plot.getPlotItem().getAxis(axis).enableAutoSIPrefix(False)
+            add_export_menu(plot, self.caption, name)
+        pl.addWidget(self.tolerance_plot, 3)
+        pl.addWidget(self.accuracy_plot, 2)
+
+        self.table = QTableWidget(0, len(COLUMNS))
+        self.table.setHorizontalHeaderLabels(COLUMNS)
+        self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
+        self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
+        self.table.verticalHeader().setVisible(False)
+        self.table.verticalHeader().setDefaultSectionSize(22)
+        header = self.table.horizontalHeader()
+        header.setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
+        header.setSectionResizeMode(len(COLUMNS) - 1, QHeaderView.ResizeMode.Stretch)
+        self.table.setWordWrap(False)
+        header.setSortIndicator(1, Qt.SortOrder.AscendingOrder)  # training step order until the user sorts
+        self.table.setSortingEnabled(True)
+
+        split = QSplitter(Qt.Orientation.Vertical)
+        split.setChildrenCollapsible(False)
+        split.addWidget(plots)
+        split.addWidget(self.table)
+        split.setStretchFactor(0, 3)
+        split.setStretchFactor(1, 2)
+        split.setSizes([520, 240])
+        outer.addWidget(split, 1)
+
+    # ---- settings ------------------------------------------------------------------------
+
+    def settings_dict(self) -> dict:
+        return {"start": self.start.value(), "stop": self.stop.value(), "points": self.points_box.value(),
+                "spacing": self.spacing.currentText(), "zero": self.zero.isChecked(), "repeats": self.repeats.value(),
+                "noise": self.noise.currentText(), "seed": self.seed.value()}
+
+    def restore(self, values: dict) -> None:
+        merged = {**DEFAULTS, **(values or {})}
+        try:
+            self.start.setValue(float(merged["start"]))
+            self.stop.setValue(float(merged["stop"]))
+            self.points_box.setValue(int(merged["points"]))
+            self.spacing.setCurrentText(str(merged["spacing"]))
+            self.zero.setChecked(str(merged["zero"]).lower() in ("true", "1"))
+            self.repeats.setValue(int(merged["repeats"]))
+            self.noise.setCurrentText(str(merged["noise"]))
+            self.seed.setValue(int(merged["seed"]))
+        except (TypeError, ValueError, KeyError):
+            if values is not DEFAULTS:
+                self.restore(DEFAULTS)
+
+    def sweep_settings(self) -> SweepSettings:
+        s = self.settings_dict()
+        sigmas = sigma_grid(s["start"], s["stop"], s["points"], s["spacing"], s["zero"])
+        return SweepSettings(sigmas=sigmas, repeats=s["repeats"], noise=s["noise"], seed=s["seed"]).validated()
+
+    def set_text(self, text: str, text_source: str = "") -> None:
+        """The evaluation text every checkpoint is swept on (the demo text until this is called)."""
+        self.text, self.text_source = text, text_source
+
+    # ---- running -------------------------------------------------------------------------
+
+    def choose_folder(self) -> None:
+        folder = QFileDialog.getExistingDirectory(self, "Choose a folder of training checkpoints", self.folder)
+        if folder:
+            self.run_folder(folder)
+
+    def is_running(self) -> bool:
+        return self._task is not None
+
+    def run_folder(self, path: str | Path) -> bool:
+        """Measure every checkpoint in `path`; a running measurement is superseded."""
+        folder = str(path)
+        try:
+            settings = self.sweep_settings()
+            checkpoints = checkpoints_in(folder)
+        except ChunkscopeError as exc:
+            self.error.emit(str(exc))
+            return False
+        if not self.text:
+            try:
+                self.text, self.text_source = demo_text(), "demo_text.txt"
+            except ChunkscopeError as exc:
+                self.error.emit(str(exc))
+                return False
+        if self._task is not None:
+            self._task.cancel()
+        self._generation += 1
+        gen = self._generation
+        self.folder = folder
+        self.settings_used = settings
+        self.points = []
+        self.folder_label.setText(f"{folder}  ·  {len(checkpoints)} checkpoints")
+        self.folder_label.setToolTip(folder)
+        task = Task("the training-run trend", _trend, folder, self.text, settings, self.text_source)
+        task.progress.connect(lambda done, total, g=gen: self._progress(g, done, total))
+        task.partial.connect(lambda point, g=gen: self._point(g, point))
+        task.finished.connect(lambda points, g=gen: self._finished(g, points))
+        task.failed.connect(lambda message, g=gen: self._failed(g, message))
+        task.cancelled.connect(lambda g=gen: self._cancelled(g))
+        self._task = task
+        self._expected = len(checkpoints)
+        self.progress.setValue(0)
+        self._redraw()
+        self.status.setText(f"measuring {len(checkpoints)} checkpoints on {len(settings.sigmas)} σ × {settings.repeats} "
+                            f"repeats ({settings.noise} noise)…")
+        self.runner.start(task)
+        self._sync_controls()
+        self.running_changed.emit(True)
+        return True
+
+    def cancel(self) -> None:
+        if self._task is not None:
+            self._task.cancel()
+
+    def _progress(self, gen: int, done: int, total: int) -> None:
+        if gen == self._generation:
+            self.progress.setMaximum(max(total, 1))
+            self.progress.setValue(min(done, max(total, 1)))
+
+    def _point(self, gen: int, point: TrendPoint) -> None:
+        if gen != self._generation:
+            return
+        self.points.append(point)
+        self._redraw()
+        self.status.setText(f"measured {len(self.points)} of {self._expected} checkpoints… latest: {point.name}"
+                            + (" (could not be used)" if point.error else ""))
+        self.point_added.emit(point)
+
+    def _over(self) -> None:
+        self._task = None
+        self._sync_controls()
+        self.running_changed.emit(False)
+
+    def _finished(self, gen: int, points: list[TrendPoint]) -> None:
+        if gen != self._generation:
+            return
+        self._over()
+        self.points = list(points)
+        self.progress.setValue(self.progress.maximum())
+        self._redraw()
+        self.finished.emit(self.points)
+
+    def _failed(self, gen: int, message: str) -> None:
+        if gen == self._generation:
+            self._over()
+            self.progress.setValue(0)
+            self._redraw()
+            self.error.emit(message)
+
+    def _cancelled(self, gen: int) -> None:
+        if gen == self._generation:
+            self._over()
+            self.progress.setValue(0)
+            self._redraw()
+            self.status.setText(f"cancelled after {len(self.points)} checkpoints; the ones measured are shown.")
+
+    def _sync_controls(self) -> None:
+        self.cancel_button.setEnabled(self._task is not None)
+
+    # ---- showing -------------------------------------------------------------------------
+
+    def set_points(self, points: Sequence[TrendPoint], folder: str = "", settings: SweepSettings | None = None) -> None:
+        """Show saved points (a reopened workspace) without measuring anything."""
+        if self._task is not None:
+            self._task.cancel()
+            self._generation += 1
+            self._over()
+        self.points = list(points)
+        self.folder = folder or self.folder
+        self.settings_used = settings
+        if folder:
+            self.folder_label.setText(folder)
+        self._redraw()
+
+    def _redraw(self) -> None:
+        self._fill_table()
+        self._draw_plots()
+        points = self.points
+        if self._task is not None:
+            return
+        if not points:
+            self.status.setText("Choose a folder of checkpoints from one training run to follow accuracy and tolerance "
+                                "against the training step.")
+            return
+        bad = [p for p in points if p.error]
+        stepless = [p for p in points if not p.error and p.step is None]
+        s = self.settings_used
+        parts = [f"{len(points) - len(bad)} of {len(points)} checkpoints measured"]
+        if s is not None:
+            parts.append(f"{s.noise} noise · {len(s.sigmas)} σ × {s.repeats} repeats · seed {s.seed}")
+        if bad:
+            parts.append(f"{len(bad)} could not be used (see the problem column)")
+        if stepless:
+            parts.append(f"{len(stepless)} without a training step are in the table only")
+        if any(t.get("status") == "below_at_zero" for pt in points for t in pt.tolerances.values()):
+            parts.append("a tolerance that already fails at σ = 0 is not drawn")
+        self.status.setText(" · ".join(parts))
+
+    def _fill_table(self) -> None:
+        t = self.table
+        t.setSortingEnabled(False)
+        points = sort_points(list(self.points))
+        t.setRowCount(len(points))
+        for i, p in enumerate(points):
+            tol = [p.tolerances.get(level) for level in LEVELS]
+            cells = [
+                _Cell(p.name, right=False),
+                _Cell("—" if p.step is None else f"{p.step:,}", p.step),
+                _Cell(p.step_source, right=False),
+                _Cell("—" if p.accuracy_at_zero is None else fmt_percent(p.accuracy_at_zero, 3), p.accuracy_at_zero),
+                *[_Cell(tolerance_text(x), None if not x else x.get("sigma")) for x in tol],
+                _Cell("—" if p.latent_rms is None else f"{p.latent_rms:.4g}", p.latent_rms),
+                _Cell(p.error or "", right=False),
+            ]
+            cells[0].setToolTip(p.path)
+            if p.error:
+                cells[-1].setToolTip(p.error)
+                for cell in cells:
+                    cell.setBackground(QColor(PALETTE.accent_soft))
+                    cell.setForeground(QColor(PALETTE.accent_ink))
+            for j, cell in enumerate(cells):
+                t.setItem(i, j, cell)
+        t.setSortingEnabled(True)
+
+    def _draw_plots(self) -> None:
+        p = PALETTE
+        tol_item, acc_item = self.tolerance_plot.getPlotItem(), self.accuracy_plot.getPlotItem()
+        for item in (tol_item, acc_item):
+            item.clear()
+            if item.legend is not None:
+                item.legend.clear()
+        good = [pt for pt in sort_points(list(self.points)) if pt.error is None and pt.step is not None]
+        if not good:
+            return
+        noise = self.settings_used.noise if self.settings_used is not None else ""
+        unit = {"data-scale": "relative σ", "isotropic": "absolute σ", "posterior": "σ in posterior std"}.get(noise, "σ")
+        tol_item.setLabel("left", unit, color=p.ink_soft, **{"font-size": "8pt"})
+        legend(tol_item, offset=(10, 10))
+        any_lower_bound = False
+        highest = 0.0
+        for level in LEVELS:
+            style, symbol = LEVEL_STYLE[level]
+            rows = [(pt.step, pt.tolerances[level]) for pt in good if pt.tolerances.get(level, {}).get("sigma") is not None]
+            if not rows:
+                continue
+            x = np.array([r[0] for r in rows], dtype=np.float64)
+            y = np.array([r[1]["sigma"] for r in rows], dtype=np.float64)
+            above = np.array([r[1].get("status") == "above_grid" for r in rows])
+            any_lower_bound |= bool(above.any())
+            highest = max(highest, float(y.max()))
+            tol_item.addItem(pg.PlotDataItem(x, y, pen=pen(p.accent, 1.8, style), symbol=symbol, symbolSize=7,
+                                             symbolBrush=p.accent, symbolPen=None, name=f"{LEVEL_NAMES[level]} tolerance"))
+            if above.any():  # a lower bound: the accuracy never dropped on the grid
+                tol_item.addItem(pg.PlotDataItem(x[above], y[above], pen=None, symbol=symbol, symbolSize=9,
+                                                 symbolBrush=p.surface, symbolPen=pen(p.accent, 1.5)))
+        if any_lower_bound:
+            tol_item.legend.addItem(pg.PlotDataItem(pen=None, symbol="o", symbolSize=9, symbolBrush=p.surface,
+                                                    symbolPen=pen(p.accent, 1.5)), "never dropped on the grid (lower bound)")
+        acc = [(pt.step, pt.accuracy_at_zero) for pt in good if pt.accuracy_at_zero is not None]
+        if acc:
+            acc_item.addItem(pg.PlotDataItem([a[0] for a in acc], [a[1] for a in acc], pen=pen(p.ink, 2), symbol="o",
+                                             symbolSize=7, symbolBrush=p.ink, symbolPen=None))
+        steps = [pt.step for pt in good]
+        span = max(steps) - min(steps)
+        pad = span * 0.04 if span > 0 else 1.0
+        tol_item.setXRange(min(steps) - pad, max(steps) + pad, padding=0)  # the accuracy plot follows (x-linked)
+        tol_item.setYRange(0, highest * 1.12 if highest > 0 else 1.0, padding=0)  # σ starts at 0
+        acc_item.enableAutoRange(y=True)
+
+    # ---- for export and reports ----------------------------------------------------------
+
+    def caption(self) -> str:
+        """Provenance of what is shown, for a saved plot."""
+        measured = [pt for pt in sort_points(list(self.points)) if pt.error is None]
+        if not measured:
+            return ""
+        names = ", ".join(f"{pt.name} ({pt.sha256[:8]})" for pt in measured[:4])
+        if len(measured) > 4:
+            names += f", … {measured[-1].name} ({measured[-1].sha256[:8]})"
+        folder = Path(self.folder).name if self.folder else "a training run"
+        text = f"{len(measured)} checkpoints of {folder}: {names}"
+        result = next((pt.result for pt in measured if pt.result is not None), None)
+        if result is not None:
+            s = result.settings
+            text += (f"; text {result.chunks.text_sha256[:10]} ({result.chunks.num_tokens:,} tokens); {s.noise} noise; "
+                     f"seed {s.seed}; {s.repeats} repeats")
+        elif self.settings_used is not None:
+            s = self.settings_used
+            text += f"; {s.noise} noise; seed {s.seed}; {s.repeats} repeats"
+        return text + f"; chunkscope {core.__version__}"
+
+    def plots(self) -> list[pg.PlotWidget]:
+        return [self.tolerance_plot, self.accuracy_plot]
