@@ -1,0 +1,108 @@
+"""Background work: every heavy call runs in a Task on a thread pool and reports back by signal.
+
+A Task is cancelled cooperatively: its function receives the task and polls
+`task.should_stop()` (core's `should_stop=` hooks take it directly). Signals are queued
+to the receiver's thread, so panels only ever touch widgets on the GUI thread.
+"""
+
+from __future__ import annotations
+
+import threading
+import traceback
+from typing import Any, Callable
+
+import torch
+from PySide6.QtCore import QObject, QRunnable, QThreadPool, Signal
+
+from core.errors import ChunkscopeError, SweepCancelled
+
+
+class Task(QObject):
+    progress = Signal(int, int)
+    partial = Signal(object)
+    finished = Signal(object)
+    failed = Signal(str)
+    cancelled = Signal()
+    ended = Signal()  # after any of finished / failed / cancelled
+
+    def __init__(self, name: str, fn: Callable[..., Any], *args: Any, **kwargs: Any):
+        super().__init__()
+        self.name = name
+        self._fn, self._args, self._kwargs = fn, args, kwargs
+        self._stop = threading.Event()
+        self.done = threading.Event()
+
+    def cancel(self) -> None:
+        self._stop.set()
+
+    def should_stop(self) -> bool:
+        return self._stop.is_set()
+
+    def report(self, done: int, total: int) -> None:
+        self.progress.emit(int(done), int(total))
+
+    def run(self) -> None:
+        try:
+            result = self._fn(self, *self._args, **self._kwargs)
+            if self._stop.is_set():
+                self.cancelled.emit()
+            else:
+                self.finished.emit(result)
+        except SweepCancelled:
+            self.cancelled.emit()
+        except ChunkscopeError as exc:
+            self.failed.emit(str(exc))
+        except MemoryError:
+            self.failed.emit(f"{self.name} ran out of memory.")
+        except Exception as exc:  # a bug, not a user error: say what happened, keep the app alive
+            traceback.print_exc()
+            self.failed.emit(f"{self.name} failed unexpectedly: {type(exc).__name__}: {exc}")
+        finally:
+            self.done.set()
+            self.ended.emit()
+
+
+class _Runnable(QRunnable):
+    def __init__(self, task: Task):
+        super().__init__()
+        self.task = task
+        self.setAutoDelete(True)
+
+    def run(self) -> None:
+        # one core per task (the live view and a sweep run side by side); set in each pool
+        # thread, since torch's intra-op thread count is kept per calling thread
+        torch.set_num_threads(1)
+        self.task.run()
+
+
+class Runner(QObject):
+    """Owns the thread pool and keeps every running Task alive until it ends."""
+
+    def __init__(self, parent: QObject | None = None, threads: int = 3):
+        super().__init__(parent)
+        self.pool = QThreadPool(self)
+        self.pool.setMaxThreadCount(threads)
+        self._tasks: set[Task] = set()
+        self._lock = threading.Lock()
+
+    def start(self, task: Task) -> Task:
+        with self._lock:
+            self._tasks.add(task)
+        task.ended.connect(lambda t=task: self._forget(t))
+        self.pool.start(_Runnable(task))
+        return task
+
+    def _forget(self, task: Task) -> None:
+        # only the task whose last signal this is: another finished task may still have signals queued
+        with self._lock:
+            self._tasks.discard(task)
+
+    def running(self) -> list[Task]:
+        with self._lock:
+            return [t for t in self._tasks if not t.done.is_set()]
+
+    def shutdown(self, timeout_ms: int = 5000) -> bool:
+        """Cancel everything and wait for the threads; True when all stopped in time."""
+        for task in self.running():
+            task.cancel()
+        return self.pool.waitForDone(timeout_ms)

@@ -1,0 +1,251 @@
+"""What the workbench's views need beyond the engine's results, computed without Qt.
+
+The live view decodes the part of the text on screen first and the rest after, so a
+slider move shows up quickly; both parts use the sweep's ε (core.latent.draw_eps), and
+merging them gives exactly what `core.live.perturb_once` gives for the whole text.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Callable, Sequence
+
+import numpy as np
+import torch
+
+from core.errors import SettingsError
+from core.latent import NOISE_BLOCK, Encoded, check_noise, draw_eps, noise_scale
+from core.live import LivePerturbation
+from core.text import Chunks
+from core.tokenizer import token_display
+
+
+@dataclass
+class LiveWindow:
+    """One perturbation of chunks [chunk_start, chunk_stop): the live view's unit of work."""
+
+    sigma: float
+    noise: str
+    seed: int
+    draw: int
+    chunk_start: int
+    chunk_stop: int
+    token_start: int
+    token_stop: int
+    predicted: np.ndarray  # [n] decoded ids of tokens token_start..token_stop
+    correct: np.ndarray  # [n] bool
+    top_ids: np.ndarray  # [n, top_k]
+    top_probs: np.ndarray  # [n, top_k]
+    exact_chunks: int
+
+
+def block_range(chunk_start: int, chunk_stop: int, num_chunks: int) -> tuple[int, int]:
+    """The smallest range of whole noise blocks covering [chunk_start, chunk_stop)."""
+    start = max(0, min(chunk_start, num_chunks)) // NOISE_BLOCK * NOISE_BLOCK
+    stop = min(num_chunks, -(-max(chunk_stop, start + 1) // NOISE_BLOCK) * NOISE_BLOCK)
+    return start, stop
+
+
+@torch.inference_mode()
+def perturb_window(
+    codec,
+    chunks: Chunks,
+    encoded: Encoded,
+    sigma: float,
+    noise: str,
+    seed: int,
+    draw: int,
+    chunk_start: int,
+    chunk_stop: int,
+    top_k: int = 5,
+    should_stop: Callable[[], bool] | None = None,
+) -> LiveWindow | None:
+    """Perturb and decode chunks [chunk_start, chunk_stop) (block-aligned start); None if stopped."""
+    check_noise(noise, codec)
+    if chunk_start % NOISE_BLOCK:
+        raise ValueError("a live window starts on a noise block boundary")
+    n, k, dim = encoded.num_chunks, codec.chunk_size, codec.latent_dim
+    chunk_stop = min(chunk_stop, n)
+    t_total = chunks.num_tokens
+    t0, t1 = chunk_start * k, min(chunk_stop * k, t_total)
+    predicted = np.empty(t1 - t0, dtype=np.int64)
+    top_ids = np.empty((t1 - t0, top_k), dtype=np.int64)
+    top_probs = np.empty((t1 - t0, top_k), dtype=np.float32)
+    exact = 0
+    for start in range(chunk_start, chunk_stop, NOISE_BLOCK):
+        if should_stop is not None and should_stop():
+            return None
+        stop = min(start + NOISE_BLOCK, chunk_stop)
+        mean = encoded.mean[start:stop]
+        if sigma > 0:
+            eps = draw_eps(seed, draw, start, stop, dim)
+            z = mean + float(sigma) * eps * noise_scale(noise, encoded, start, stop)
+        else:
+            z = mean
+        logits = codec.decode(z)
+        # top-k on logits and probabilities from logsumexp: same ranking as softmax, fewer passes
+        values, ids = logits.topk(top_k, dim=-1)
+        probs = torch.exp(values - torch.logsumexp(logits, -1, keepdim=True))
+        a, b = start * k - t0, min(stop * k, t_total) - t0
+        m = b - a
+        predicted[a:b] = ids[..., 0].reshape(-1)[:m].numpy()
+        top_ids[a:b] = ids.reshape(-1, top_k)[:m].numpy()
+        top_probs[a:b] = probs.reshape(-1, top_k)[:m].numpy()
+        truth, mask = chunks.ids(start, stop), chunks.mask(start, stop)
+        exact += int(((ids[..., 0] == truth) | ~mask).all(1).sum())
+    correct = predicted == chunks.token_ids[t0:t1]
+    return LiveWindow(
+        sigma=float(sigma), noise=noise, seed=seed, draw=draw, chunk_start=chunk_start, chunk_stop=chunk_stop,
+        token_start=t0, token_stop=t1, predicted=predicted, correct=correct, top_ids=top_ids,
+        top_probs=top_probs, exact_chunks=exact,
+    )
+
+
+def merge_windows(chunks: Chunks, windows: Sequence[LiveWindow]) -> LivePerturbation:
+    """Join windows that tile the whole text into the LivePerturbation of the whole text."""
+    if not windows:
+        raise ValueError("nothing to merge")
+    windows = sorted(windows, key=lambda w: w.chunk_start)
+    first = windows[0]
+    n = chunks.num_chunks
+    covered = 0
+    for w in windows:
+        if w.chunk_start != covered:
+            raise ValueError("live windows must tile the text without gaps or overlaps")
+        covered = w.chunk_stop
+    if covered != n:
+        raise ValueError("live windows must cover the whole text")
+    predicted = np.concatenate([w.predicted for w in windows])
+    correct = np.concatenate([w.correct for w in windows])
+    return LivePerturbation(
+        sigma=first.sigma, noise=first.noise, seed=first.seed, draw=first.draw, predicted=predicted, correct=correct,
+        top_ids=np.concatenate([w.top_ids for w in windows]), top_probs=np.concatenate([w.top_probs for w in windows]),
+        token_accuracy=float(correct.mean()), chunk_exact_rate=sum(w.exact_chunks for w in windows) / n,
+        tokens=chunks.num_tokens, chunks=n,
+    )
+
+
+def remaining_ranges(num_chunks: int, done_start: int, done_stop: int) -> list[tuple[int, int]]:
+    """Block-aligned ranges of the text outside [done_start, done_stop), nearest first."""
+    out = []
+    if done_stop < num_chunks:
+        out.append((done_stop, num_chunks))
+    if done_start > 0:
+        out.append((0, done_start))
+    return out
+
+
+@dataclass
+class DecodedLayout:
+    """The decoded text for display: original text for right tokens, the decoded piece for wrong ones."""
+
+    text: str
+    spans: np.ndarray  # [T, 2] character spans of each token in `text`
+
+
+def decoded_layout(codec, chunks: Chunks, predicted: np.ndarray, correct: np.ndarray, token_start: int = 0) -> DecodedLayout:
+    """Text of tokens token_start..token_start+len(predicted) as decoded; right tokens keep their exact characters."""
+    text, spans = chunks.text, chunks.spans
+    pieces: list[str] = []
+    cache: dict[int, str] = {}
+    for j, (tid, ok) in enumerate(zip(predicted.tolist(), correct.tolist())):
+        t = token_start + j
+        if ok:
+            pieces.append(text[spans[t, 0] : spans[t, 1]])
+        else:
+            piece = cache.get(tid)
+            if piece is None:
+                piece = cache[tid] = token_display(codec.tokenizer, tid)
+            pieces.append(piece)
+    lengths = np.fromiter((len(p) for p in pieces), dtype=np.int64, count=len(pieces))
+    ends = np.cumsum(lengths)
+    out_spans = np.stack([ends - lengths, ends], axis=1) if len(pieces) else np.zeros((0, 2), dtype=np.int64)
+    return DecodedLayout("".join(pieces), out_spans)
+
+
+def token_at(spans: np.ndarray, char_pos: int) -> int | None:
+    """Index of the token whose span holds character char_pos (None outside the text)."""
+    if len(spans) == 0 or char_pos < 0:
+        return None
+    i = int(np.searchsorted(spans[:, 1], char_pos, side="right"))
+    while i < len(spans) and spans[i, 1] <= spans[i, 0]:
+        i += 1  # empty spans (partial characters) hold nothing
+    if i >= len(spans) or not spans[i, 0] <= char_pos < spans[i, 1]:
+        return None
+    return i
+
+
+def sigma_grid(start: float, stop: float, points: int, spacing: str = "log", include_zero: bool = True) -> tuple[float, ...]:
+    """A sweep grid of `points` sigmas from start to stop, evenly or geometrically spaced, optionally with 0."""
+    if points < 1 or points > 10_000:
+        raise SettingsError(f"the number of grid points must be from 1 to 10000, not {points}.")
+    if not (math.isfinite(start) and math.isfinite(stop)) or start < 0 or stop < start:
+        raise SettingsError(f"the sigma range must satisfy 0 <= from <= to, not {start:g} to {stop:g}.")
+    if spacing == "log":
+        if start <= 0:
+            raise SettingsError("a log-spaced grid needs 'from' above 0 (zero can be added separately).")
+        values = np.geomspace(start, stop, points) if points > 1 else np.array([start])
+    elif spacing == "linear":
+        values = np.linspace(start, stop, points) if points > 1 else np.array([start])
+    else:
+        raise SettingsError(f"grid spacing must be log or linear, not {spacing!r}.")
+    grid = {round(float(v), 6) for v in values}
+    if include_zero:
+        grid.add(0.0)
+    return tuple(sorted(grid))
+
+
+def critical_sigma_levels(critical_sigma: np.ndarray, sigmas: Sequence[float]) -> np.ndarray:
+    """Per token: the index of its critical sigma on the grid (-1 where it never broke)."""
+    grid = np.asarray(sigmas, dtype=np.float64)
+    out = np.full(len(critical_sigma), -1, dtype=np.int64)
+    broke = ~np.isnan(critical_sigma)
+    out[broke] = np.clip(np.searchsorted(grid, critical_sigma[broke] - 1e-12, side="left"), 0, len(grid) - 1)
+    return out
+
+
+@dataclass
+class TokenStory:
+    """One token across a sweep: accuracy per sigma and what repeat 0 decoded it to."""
+
+    index: int
+    text: str
+    critical_sigma: float
+    accuracy: np.ndarray  # [S]
+    decoded_as: list[tuple[float, str, int]]  # (first sigma, decoded text, sigmas at which it appeared)
+
+
+def token_story(result, tokenizer, token_index: int) -> TokenStory:
+    chunks = result.chunks
+    a, b = chunks.spans[token_index]
+    truth = int(chunks.token_ids[token_index])
+    decoded = result.decoded[token_index].astype(np.int64)
+    seen: dict[int, list[float]] = {}
+    for sigma, tid in zip(result.sigmas, decoded.tolist()):
+        if tid != truth:
+            seen.setdefault(tid, []).append(sigma)
+    stories = sorted(((v[0], token_display(tokenizer, k), len(v)) for k, v in seen.items()), key=lambda x: x[0])
+    return TokenStory(
+        index=token_index,
+        text=chunks.text[a:b] or token_display(tokenizer, truth),
+        critical_sigma=float(result.critical_sigma[token_index]),
+        accuracy=result.token_accuracy_curve(token_index),
+        decoded_as=stories,
+    )
+
+
+def error_rate_floor(result) -> float:
+    """Half of one error among all scored tokens: where a log axis draws a sigma with no errors."""
+    tokens = max((c.tokens for c in result.curves), default=1)
+    return 0.5 / max(tokens, 1)
+
+
+def bucket_accuracy_table(result) -> tuple[list[str], list[int], np.ndarray]:
+    """Frequency-bucket labels, tokens per bucket (at the first sigma) and accuracy [buckets, S]."""
+    if not result.curves:
+        return [], [], np.zeros((0, 0))
+    labels = list(result.curves[0].bucket_labels)
+    counts = [t // result.settings.repeats for t in result.curves[0].bucket_tokens]
+    acc = np.array([c.bucket_accuracy for c in result.curves], dtype=np.float64).T
+    return labels, counts, acc

@@ -1,0 +1,76 @@
+"""core.views: what the workbench shows beyond core's results, checked against core itself."""
+
+import numpy as np
+import pytest
+import torch
+
+from core.checkpoint import Codec
+from core.errors import SettingsError
+from core.latent import encode_chunks
+from core.live import perturb_once
+from core.model import ChunkMLPConfig, build_model
+from core.text import chunk_text, demo_text
+from core.tokenizer import train_byte_bpe
+from core.views import (
+    block_range, critical_sigma_levels, decoded_layout, merge_windows, perturb_window, remaining_ranges, sigma_grid,
+    token_at,
+)
+
+
+@pytest.fixture(scope="module")
+def setup():
+    torch.manual_seed(0)
+    text = demo_text()[:6000]
+    tokenizer = train_byte_bpe([text], 300)
+    config = ChunkMLPConfig(chunk_size=4, vocab_size=tokenizer.get_vocab_size(), latent_dim=8, embed_dim=16, width=32, depth=1)
+    codec = Codec(model=build_model(config), tokenizer=tokenizer)
+    chunks = chunk_text(text, codec)
+    return codec, chunks, encode_chunks(codec, chunks)
+
+
+def test_windows_merge_into_the_engines_whole_text_perturbation(setup):
+    """The reference is core.live.perturb_once over the whole text with the same noise."""
+    codec, chunks, encoded = setup
+    n = encoded.num_chunks
+    assert n > 256, "the text must span more than one noise block for this check"
+    start, stop = block_range(300, 310, n)
+    assert (start, stop) == (256, min(512, n))
+    windows = [perturb_window(codec, chunks, encoded, 0.8, "data-scale", 3, 1, start, stop)]
+    for a, b in remaining_ranges(n, start, stop):
+        windows.append(perturb_window(codec, chunks, encoded, 0.8, "data-scale", 3, 1, a, b))
+    merged = merge_windows(chunks, windows)
+    reference = perturb_once(codec, chunks, encoded, 0.8, "data-scale", seed=3, draw=1)
+    np.testing.assert_array_equal(merged.predicted, reference.predicted)
+    np.testing.assert_array_equal(merged.top_ids, reference.top_ids)
+    np.testing.assert_allclose(merged.top_probs, reference.top_probs, atol=1e-5)
+    assert merged.token_accuracy == pytest.approx(reference.token_accuracy)
+    assert merged.chunk_exact_rate == pytest.approx(reference.chunk_exact_rate)
+
+
+def test_a_stopped_window_returns_nothing(setup):
+    codec, chunks, encoded = setup
+    assert perturb_window(codec, chunks, encoded, 0.5, "isotropic", 0, 0, 0, 256, should_stop=lambda: True) is None
+
+
+def test_decoded_layout_keeps_right_tokens_and_shows_wrong_ones(setup):
+    codec, chunks, _ = setup
+    predicted = chunks.token_ids.copy()
+    correct = np.ones(len(predicted), dtype=bool)
+    layout = decoded_layout(codec, chunks, predicted, correct)
+    assert layout.text == chunks.text
+    other = int((predicted[5] + 7) % codec.vocab_size) or 2
+    predicted[5], correct[5] = other, False
+    layout = decoded_layout(codec, chunks, predicted, correct)
+    a, b = layout.spans[5]
+    assert token_at(layout.spans, int(a)) == 5 if b > a else True
+    assert layout.text.startswith(chunks.text[: chunks.spans[5, 0]])
+
+
+def test_sigma_grid_and_levels():
+    grid = sigma_grid(0.01, 1.0, 3, "log", include_zero=True)
+    assert grid == (0.0, 0.01, 0.1, 1.0)
+    assert sigma_grid(0, 1, 3, "linear", include_zero=False) == (0.0, 0.5, 1.0)
+    with pytest.raises(SettingsError):
+        sigma_grid(0.0, 1.0, 5, "log")
+    levels = critical_sigma_levels(np.array([np.nan, 0.0, 0.1, 1.0]), grid)
+    assert levels.tolist() == [-1, 0, 2, 3]
