@@ -83,6 +83,8 @@ class Screenshot:
         self.window.show_view(self.view)
         self.window.workbench.sweep_ended.connect(self._sweep_ended)
         self.window.workbench.error.connect(self._fail)
+        self.window.compare.error.connect(self._fail)
+        self.window.trend.error.connect(self._fail)
         self.timer = QTimer()
         self.timer.setInterval(100)
         self.timer.timeout.connect(self._tick)
@@ -123,11 +125,28 @@ class Screenshot:
             if self.view in ("sweep", "tokens", "latent"):
                 if not w.sweep.run():
                     return self._fail(w.message.text() or "the sweep did not start")
+            elif self.view == "compare":  # a small grid and one repeat keep the shot quick
+                w.compare.restore({"start": 0.02, "stop": 2.0, "points": 8, "spacing": "log", "zero": True, "repeats": 1})
+                if not w.compare.run():
+                    return self._fail(w.message.text() or "the comparison did not start")
+            elif self.view == "trend":  # the sample models' folder stands in for a training run
+                from app.state import samples_folder
+
+                w.trend.restore({"start": 0.02, "stop": 2.0, "points": 8, "spacing": "log", "zero": True, "repeats": 1})
+                if not w.trend.run_folder(samples_folder()):
+                    return self._fail(w.message.text() or "the training-run trend did not start")
             return
         if self.stage == "working":
             entry = wb.entry()
             if self.view == "live":
                 if w.live.result is None or w.live.task is not None:
+                    return
+            elif self.view == "compare":
+                c = w.compare
+                if c.comparison is None or c.is_running() or (c._view_task is not None and not c._view_task.done.is_set()):
+                    return
+            elif self.view == "trend":
+                if w.trend.is_running() or not w.trend.points:
                     return
             elif entry.sweep is None:
                 return

@@ -392,6 +392,7 @@ class ComparePanel(QWidget):
     def set_inputs(self, codecs: Sequence, text: str, text_source: str = "") -> None:
         """The loaded checkpoints (Codec objects) and the evaluation text to compare them on."""
         ticked = {self._codec_key(c) for c in self.selected_codecs()} if self.codecs else None
+        known = {self._codec_key(c) for c in self.codecs}  # a newly loaded checkpoint arrives ticked
         reference = self.reference.currentText()
         self.codecs = list(codecs)
         self.text, self.text_source = text, text_source
@@ -402,7 +403,7 @@ class ComparePanel(QWidget):
         for i, codec in enumerate(self.codecs):
             item = QListWidgetItem(_swatch(codec_colour(i)), f"{codec.name}  ·  {codec.sha256[:8]}")
             item.setFlags(Qt.ItemFlag.ItemIsEnabled | Qt.ItemFlag.ItemIsUserCheckable)
-            on = ticked is None or self._codec_key(codec) in ticked
+            on = ticked is None or self._codec_key(codec) in ticked or self._codec_key(codec) not in known
             item.setCheckState(Qt.CheckState.Checked if on else Qt.CheckState.Unchecked)
             item.setToolTip(codec.path or codec.name)
             self.picker.addItem(item)

@@ -8,8 +8,11 @@ import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import QFrame, QGridLayout, QHBoxLayout, QLabel, QVBoxLayout, QWidget
 
+from app.export import add_export_menu
 from app.state import Workbench
 from app.style import PALETTE, faded, fmt_sigma, log_ticks, pen, plot_widget
+import core
+from core.report import provenance_caption
 from core.health import ACTIVE_THRESHOLD, expected_noise_norm
 
 
@@ -82,6 +85,9 @@ class LatentPanel(QWidget):
         grid.setColumnStretch(1, 1)
         outer.addLayout(grid, 1)
         self.var_plot.getPlotItem().setLogMode(y=True)
+        for plot, name in ((self.kl_plot, "latent-kl"), (self.std_plot, "latent-std"), (self.var_plot, "latent-activity"),
+                           (self.nn_plot, "latent-nearest-neighbour")):
+            add_export_menu(plot, self.caption, name)
         self.plain_notes = []
         for plot in (self.kl_plot, self.std_plot):
             note = pg.TextItem("", color=PALETTE.ink_soft, anchor=(0.5, 0.5))
@@ -187,3 +193,15 @@ class LatentPanel(QWidget):
             self.verdict.setText("Run a sweep to draw the measured 99 % tolerance onto the distance histogram and see "
                                  "whether the latent geometry or the decoder is the limit.")
         self.plotted.emit()
+
+    def caption(self) -> str:
+        """Provenance of what is shown, for a saved plot."""
+        entry = self.workbench.entry()
+        if entry is None or entry.codec is None:
+            return ""
+        if entry.sweep is not None:
+            return provenance_caption([entry.sweep])
+        text = f"{entry.name} ({entry.codec.sha256[:10]})"
+        if entry.chunks is not None:
+            text += f"; text {entry.chunks.text_sha256[:10]} ({entry.chunks.num_tokens:,} tokens)"
+        return text + f"; chunkscope {core.__version__}"

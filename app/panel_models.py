@@ -8,7 +8,8 @@ from pathlib import Path
 
 from PySide6.QtCore import QSize, Qt, Signal
 from PySide6.QtWidgets import (
-    QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QPushButton, QTextBrowser, QVBoxLayout, QWidget,
+    QFrame, QGridLayout, QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QPushButton, QScrollArea, QSizePolicy,
+    QVBoxLayout, QWidget,
 )
 
 from app.state import Entry, Workbench
@@ -21,6 +22,144 @@ def _entry_summary(entry: Entry) -> tuple[str, str]:
     c = entry.codec.config
     kind = "variational" if c.variational else "plain"
     return entry.name, f"{kind} · K {c.chunk_size} · D {c.latent_dim} · {entry.codec.sha256[:8]}"
+
+
+class ElidedLabel(QLabel):
+    """One line that keeps its full text and shows as much as fits, eliding in the middle
+    (a hash keeps its start and end); the full text is in the tooltip when cut."""
+
+    def __init__(self, text: str = "", mode: Qt.TextElideMode = Qt.TextElideMode.ElideMiddle):
+        super().__init__()
+        self._full = ""
+        self._mode = mode
+        self.setTextFormat(Qt.TextFormat.PlainText)
+        self.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        self.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
+        self.set_full_text(text)
+
+    def set_full_text(self, text: str) -> None:
+        self._full = str(text)
+        self._elide()
+
+    def full_text(self) -> str:
+        return self._full
+
+    def sizeHint(self) -> QSize:  # noqa: N802
+        return QSize(self.fontMetrics().horizontalAdvance(self._full) + 4, super().sizeHint().height())
+
+    def minimumSizeHint(self) -> QSize:  # noqa: N802
+        return QSize(24, super().minimumSizeHint().height())
+
+    def resizeEvent(self, event) -> None:  # noqa: N802
+        super().resizeEvent(event)
+        self._elide()
+
+    def _elide(self) -> None:
+        width = max(self.contentsRect().width(), 24)
+        shown = self.fontMetrics().elidedText(self._full, self._mode, width)
+        if shown != self.text():
+            self.setText(shown)
+        self.setToolTip(self._full if shown != self._full or len(self._full) > 24 else "")
+
+
+class DetailsView(QScrollArea):
+    """The selected checkpoint's details and card as a two-column key / value list:
+    short values on one line (long hashes elided in the middle, full value in the tooltip),
+    prose wrapped; nested card fields arrive flattened with dotted keys."""
+
+    KEY_WIDTH = 125
+
+    def __init__(self):
+        super().__init__()
+        self.setObjectName("details")
+        self.setWidgetResizable(True)
+        self.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
+        self.setFrameShape(QFrame.Shape.NoFrame)
+        self.setStyleSheet(f"QScrollArea#details {{ background: {PALETTE.surface}; border: 1px solid {PALETTE.line}; "
+                           "border-radius: 6px; }")
+        self._rows: list[tuple[str, str]] = []
+        self._values: dict[str, QLabel] = {}
+        self._show(QWidget())
+
+    def _show(self, inner: QWidget) -> None:
+        inner.setObjectName("detailsInner")
+        inner.setStyleSheet(f"QWidget#detailsInner {{ background: {PALETTE.surface}; }}")
+        old = self.takeWidget()
+        if old is not None:
+            old.deleteLater()
+        self.setWidget(inner)
+
+    def set_message(self, text: str) -> None:
+        self._rows, self._values = [("", text)], {}
+        inner = QWidget()
+        layout = QVBoxLayout(inner)
+        layout.setContentsMargins(10, 10, 10, 10)
+        label = QLabel(text)
+        label.setObjectName("caption")
+        label.setWordWrap(True)
+        layout.addWidget(label)
+        layout.addStretch(1)
+        self._show(inner)
+
+    def set_sections(self, sections: list[tuple[str, list[tuple[str, object]], str, bool]]) -> None:
+        """(title, rows, note when rows is empty, stacked) per section; the first title may be
+        empty. Stacked rows put the key above its value (card keys are long dotted names)."""
+        self._rows, self._values = [], {}
+        inner = QWidget()
+        layout = QVBoxLayout(inner)
+        layout.setContentsMargins(10, 8, 10, 10)
+        layout.setSpacing(4)
+        for title, rows, note, stacked in sections:
+            if title:
+                head = QLabel(title)
+                head.setObjectName("section")
+                head.setContentsMargins(0, 8, 0, 0)
+                layout.addWidget(head)
+            if not rows:
+                label = QLabel(note)
+                label.setObjectName("faint")
+                label.setWordWrap(True)
+                layout.addWidget(label)
+                continue
+            grid = QGridLayout()
+            grid.setHorizontalSpacing(10)
+            grid.setVerticalSpacing(3)
+            grid.setColumnStretch(1, 1)
+            for i, (key, value) in enumerate(rows):
+                key, value = str(key), str(value)
+                self._rows.append((key, value))
+                key_label = ElidedLabel(key)
+                key_label.setObjectName("caption")
+                key_label.setSizePolicy(QSizePolicy.Policy.Preferred, QSizePolicy.Policy.Fixed)
+                key_label.setMaximumWidth(self.KEY_WIDTH)
+                if " " in value.strip() and len(value) > 16:  # prose: wrap at spaces
+                    value_label = QLabel(value)
+                    value_label.setTextFormat(Qt.TextFormat.PlainText)
+                    value_label.setWordWrap(True)
+                    value_label.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+                    value_label.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
+                else:  # hashes, numbers, paths: one line, elided in the middle
+                    value_label = ElidedLabel(value)
+                value_label.setObjectName("detailValue")
+                if stacked:
+                    key_label.setMaximumWidth(16_777_215)
+                    key_label.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
+                    value_label.setContentsMargins(10, 0, 0, 3)
+                    grid.addWidget(key_label, 2 * i, 0, 1, 2)
+                    grid.addWidget(value_label, 2 * i + 1, 0, 1, 2)
+                else:
+                    grid.addWidget(key_label, i, 0, Qt.AlignmentFlag.AlignTop)
+                    grid.addWidget(value_label, i, 1, Qt.AlignmentFlag.AlignTop)
+                self._values.setdefault(key, value_label)
+            layout.addLayout(grid)
+        layout.addStretch(1)
+        self._show(inner)
+
+    def value_label(self, key: str) -> QLabel | None:
+        return self._values.get(key)
+
+    def toPlainText(self) -> str:  # noqa: N802 (the QTextBrowser name it replaced)
+        return "\n".join(f"{k}: {v}" if k else v for k, v in self._rows)
 
 
 class EntryRow(QWidget):
@@ -73,9 +212,7 @@ class ModelsPanel(QWidget):
         label = QLabel("DETAILS")
         label.setObjectName("section")
         layout.addWidget(label)
-        self.details = QTextBrowser()
-        self.details.setOpenLinks(False)
-        self.details.document().setDocumentMargin(10)
+        self.details = DetailsView()
         layout.addWidget(self.details, 5)
 
         label = QLabel("TEXT")
@@ -146,12 +283,11 @@ class ModelsPanel(QWidget):
 
     def _show_details(self) -> None:
         entry = self.workbench.entry()
-        p = PALETTE
         if entry is None:
-            self.details.setHtml(f"<p style='color:{p.ink_soft}'>No checkpoint is open.</p>")
+            self.details.set_message("No checkpoint is open.")
             return
         if entry.codec is None:
-            self.details.setHtml(f"<p style='color:{p.ink_soft}'>Opening {html.escape(Path(entry.path).name)}…</p>")
+            self.details.set_message(f"Opening {Path(entry.path).name}…")
             return
         codec = entry.codec
         c = codec.config
@@ -163,17 +299,12 @@ class ModelsPanel(QWidget):
             ("vocabulary", f"{c.vocab_size:,}"),
             ("embed / width / depth", f"{c.embed_dim} / {c.width} / {c.depth}"),
             ("parameters", f"{codec.num_parameters:,}"),
-            ("sha256", codec.sha256[:16] + "…"),
+            ("sha256", codec.sha256),
         ]
         if entry.encoded is not None:
             rows.append(("latent RMS", f"{entry.encoded.latent_rms:.4g}"))
-        out = [self._table(rows)]
-        out.append(f"<p style='margin:10px 0 4px 0; color:{p.ink_soft}; font-size:8pt; font-weight:600'>CARD</p>")
-        if codec.card:
-            out.append(self._stacked(self._flatten(codec.card)))
-        else:
-            out.append(f"<p style='color:{p.ink_faint}'>This checkpoint carries no card.</p>")
-        self.details.setHtml("".join(out))
+        card = self._flatten(codec.card) if codec.card else []
+        self.details.set_sections([("", rows, "", False), ("CARD", card, "This checkpoint carries no card.", True)])
 
     @staticmethod
     def _flatten(card: dict, prefix: str = "") -> list[tuple[str, object]]:
@@ -185,31 +316,10 @@ class ModelsPanel(QWidget):
             elif isinstance(value, float):
                 rows.append((name, f"{value:.4g}"))
             elif isinstance(value, list):
-                text = json.dumps(value)
-                rows.append((name, text if len(text) < 80 else text[:77] + "…"))
+                rows.append((name, json.dumps(value)))
             else:
                 rows.append((name, value))
         return rows
-
-    @staticmethod
-    def _stacked(rows: list[tuple[str, object]]) -> str:
-        """Card entries as key over value: card keys are long and values can be too."""
-        p = PALETTE
-        return "".join(
-            f"<p style='margin:0 0 4px 0; font-size:8.5pt'><span style='color:{p.ink_soft}'>{html.escape(str(k))}</span><br>"
-            f"<span style='color:{p.ink}'>{html.escape(str(v))}</span></p>"
-            for k, v in rows
-        )
-
-    @staticmethod
-    def _table(rows: list[tuple[str, object]]) -> str:
-        p = PALETTE
-        cells = "".join(
-            f"<tr><td style='color:{p.ink_soft}; padding:1px 10px 1px 0; white-space:nowrap' valign='top'>{html.escape(str(k))}</td>"
-            f"<td style='color:{p.ink}'>{html.escape(str(v))}</td></tr>"
-            for k, v in rows
-        )
-        return f"<table cellspacing='0' style='font-size:8.5pt'>{cells}</table>"
 
     def sizeHint(self) -> QSize:  # noqa: N802 (Qt naming)
         return QSize(300, 600)

@@ -11,10 +11,12 @@ from PySide6.QtWidgets import (
     QSpinBox, QVBoxLayout, QWidget,
 )
 
+from app.export import add_export_menu
 from app.state import Workbench
 from app.style import PALETTE, faded, fmt_percent, fmt_sigma, legend, log_ticks, pen, plot_widget, series_colours
 from core.errors import SettingsError
 from core.latent import NOISE_MODELS
+from core.report import provenance_caption
 from core.sweep import SweepResult, SweepSettings
 from core.views import error_rate_floor, sigma_grid
 
@@ -155,9 +157,10 @@ class SweepPanel(QWidget):
         self.nll_plot = plot_widget("Negative log-likelihood of the true token", "σ", "nats")
         self.calibration_plot = plot_widget("Brier score and calibration error (ECE)", "σ", "")
         self.plots = [self.accuracy_plot, self.error_plot, self.position_plot, self.nll_plot, self.calibration_plot]
-        for plot in self.plots:
-            frame = plot
-            frame.setObjectName("card")
+        for plot, name in zip(self.plots, ("sweep-accuracy", "sweep-error-rate", "sweep-position", "sweep-nll",
+                                           "sweep-calibration")):
+            plot.setObjectName("card")
+            add_export_menu(plot, self.caption, name)
         grid.addWidget(self.accuracy_plot, 0, 0, 1, 2)
         grid.addWidget(self.error_plot, 0, 2)
         grid.addWidget(self.position_plot, 1, 0)
@@ -439,6 +442,19 @@ class SweepPanel(QWidget):
         if i is not None:
             s = self.result.settings
             self.sigma_picked.emit(float(self._x[i]), s.noise, s.seed)
+
+    # ---- saved results, export ---------------------------------------------------------
+
+    def set_saved_result(self, result: SweepResult | None) -> None:
+        """Show a saved sweep (a reopened workspace or a `chunkscope sweep` folder) without
+        running anything; switching checkpoints shows theirs again."""
+        self.show_result(result)
+        if result is not None:
+            self.status.setText("saved: " + self.status.text())
+
+    def caption(self) -> str:
+        """Provenance of what is shown, for a saved plot."""
+        return provenance_caption([self.result]) if self.result is not None else ""
 
     def show_live_sigma(self, sigma: float, noise: str) -> None:
         visible = self.result is not None and noise == self.result.settings.noise and (sigma > 0 or not self.log_x)

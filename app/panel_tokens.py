@@ -13,12 +13,14 @@ from PySide6.QtWidgets import (
     QVBoxLayout, QWidget,
 )
 
+from app.export import add_export_menu
 from app.state import Workbench
 from app.style import (
     PALETTE, fmt_sigma, legend, level_colours, log_ticks, pen, plot_widget, readable_on, series_colours, show_piece, ui_font,
 )
 from app.tokentext import TokenText, char_format
 from app.workers import Task
+from core.report import provenance_caption
 from core.sweep import SweepResult
 from core.tokens import fragile_types
 from core.views import bucket_accuracy_table, critical_sigma_levels, token_story
@@ -189,6 +191,8 @@ class TokensPanel(QWidget):
         self.bucket_plot.setFixedHeight(210)
         rv.addWidget(self.bucket_plot, 0)
         split.addWidget(right)
+        add_export_menu(self.token_plot, self.caption, "token-accuracy")
+        add_export_menu(self.bucket_plot, self.caption, "accuracy-by-frequency")
         split.setStretchFactor(0, 3)
         split.setStretchFactor(1, 2)
         split.setSizes([640, 560])
@@ -351,3 +355,12 @@ class TokensPanel(QWidget):
         return (f"<b style='font-family:monospace'>{piece}</b><br>"
                 + ("never broke on the grid" if np.isnan(crit) else f"critical σ {fmt_sigma(float(crit))}")
                 + "<br><span style='color:#777'>click for its accuracy curve</span>")
+
+    def caption(self) -> str:
+        """Provenance of what is shown, for a saved plot."""
+        if self.result is None:
+            return ""
+        text = provenance_caption([self.result])
+        if self.selected is not None:
+            text += f"; token {self.selected}"
+        return text

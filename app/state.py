@@ -278,6 +278,21 @@ class Workbench(QObject):
         self.entry_changed.emit(path)
         self.sweep_ended.emit(path, "done")
 
+    def attach_sweep(self, result: SweepResult) -> str | None:
+        """Give a saved sweep to the opened checkpoint it was made with (same sha256) when
+        the current text is the one it was made on; the path it went to, or None."""
+        sha = result.provenance.get("codec", {}).get("sha256", "")
+        if not sha or result.chunks.text_sha256 != self.text_sha:
+            return None
+        for path, entry in self.entries.items():
+            if entry.codec is not None and entry.codec.sha256 == sha and path not in self._sweep_tasks:
+                if entry.sweep is result:
+                    return path
+                entry.sweep = result
+                self.entry_changed.emit(path)
+                return path
+        return None
+
     def _sweep_over(self, path: str, how: str) -> None:
         self._sweep_tasks.pop(path, None)
         self.sweep_ended.emit(path, how)

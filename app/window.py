@@ -12,17 +12,24 @@ from PySide6.QtWidgets import (
     QPushButton, QSplitter, QTabWidget, QVBoxLayout, QWidget,
 )
 
+from app import report_actions
+from app.panel_compare import ComparePanel
 from app.panel_latent import LatentPanel
 from app.panel_live import LivePanel
 from app.panel_models import ModelsPanel
 from app.panel_sweep import SweepPanel
 from app.panel_tokens import TokensPanel
+from app.panel_trend import TrendPanel
 from app.state import Workbench, default_text_path, sample_paths
 from app.style import mono_font
 from app.workers import Runner
+from core.errors import ChunkscopeError
+from core.sweep import SweepResult
+from core.text import text_sha256
 
-VIEWS = ("live", "sweep", "tokens", "latent")
-VIEW_TITLES = {"live": "Perturb live", "sweep": "Sweep", "tokens": "Token failures", "latent": "Latent space"}
+VIEWS = ("live", "sweep", "tokens", "latent", "compare", "trend")
+VIEW_TITLES = {"live": "Perturb live", "sweep": "Sweep", "tokens": "Token failures", "latent": "Latent space",
+               "compare": "Compare", "trend": "Training run"}
 MAX_RECENT = 10
 TEXT_SUFFIXES = {".txt", ".md", ".text", ".rst", ".csv", ".json", ".py", ".html"}
 
@@ -98,10 +105,24 @@ class MainWindow(QMainWindow):
         self.sweep.sigma_picked.connect(self._show_in_live)
         self.live.result_ready.connect(lambda r: self.sweep.show_live_sigma(r.sigma, r.noise))
         self.workbench.sweep_ended.connect(self._sweep_ended)
+        self.compare = ComparePanel(self.runner)
+        self.compare.error.connect(self.show_error)
+        self.compare.comparison_ready.connect(
+            lambda c: self.statusBar().showMessage(f"comparison of {', '.join(c.names)} finished", 6000))
+        self.trend = TrendPanel(self.runner)
+        self.trend.error.connect(self.show_error)
+        self.trend.finished.connect(
+            lambda points: self.statusBar().showMessage(f"training run measured: {len(points)} checkpoints", 6000))
+        self._compare_key: tuple = ()
+        self._pending_sweeps: list[SweepResult] = []
+        self.workbench.entries_changed.connect(self._feed_compare)
+        self.workbench.entry_changed.connect(self._entry_changed)
+        self.workbench.text_changed.connect(self._text_changed)
 
         self.tabs = QTabWidget()
         self.tabs.setDocumentMode(True)
-        self.panels = {"live": self.live, "sweep": self.sweep, "tokens": self.tokens, "latent": self.latent}
+        self.panels = {"live": self.live, "sweep": self.sweep, "tokens": self.tokens, "latent": self.latent,
+                       "compare": self.compare, "trend": self.trend}
         for name in VIEWS:
             self.tabs.addTab(self.panels[name], VIEW_TITLES[name])
 
@@ -119,7 +140,7 @@ class MainWindow(QMainWindow):
         lv = QVBoxLayout(left)
         lv.setContentsMargins(12, 12, 4, 12)
         lv.addWidget(self.models)
-        left.setMinimumWidth(270)
+        left.setMinimumWidth(290)
         left.setMaximumWidth(520)
 
         self.splitter = QSplitter(Qt.Orientation.Horizontal)
@@ -127,7 +148,7 @@ class MainWindow(QMainWindow):
         self.splitter.addWidget(right)
         self.splitter.setStretchFactor(0, 0)
         self.splitter.setStretchFactor(1, 1)
-        self.splitter.setSizes([300, 1200])
+        self.splitter.setSizes([320, 1180])
         self.splitter.setChildrenCollapsible(False)
         self.setCentralWidget(self.splitter)
         self._build_menus()
@@ -154,6 +175,23 @@ class MainWindow(QMainWindow):
         file_menu.addAction(action)
         action = QAction("Use the demo text", self)
         action.triggered.connect(lambda: self.workbench.open_text_file(str(default_text_path())))
+        file_menu.addAction(action)
+        file_menu.addSeparator()
+        action = QAction("Open training run folder…", self)
+        action.triggered.connect(self.trend.choose_folder)
+        file_menu.addAction(action)
+        action = QAction("Open sweep results folder…", self)
+        action.triggered.connect(self.open_sweep_folder_dialog)
+        file_menu.addAction(action)
+        action = QAction("Open workspace…", self)
+        action.triggered.connect(self.open_workspace_dialog)
+        file_menu.addAction(action)
+        action = QAction("Save workspace…", self)
+        action.setShortcut(QKeySequence.StandardKey.Save)
+        action.triggered.connect(self.save_workspace_dialog)
+        file_menu.addAction(action)
+        action = QAction("Save report…", self)
+        action.triggered.connect(self.save_report_dialog)
         file_menu.addAction(action)
         file_menu.addSeparator()
         action = QAction("Close checkpoint", self)
@@ -253,6 +291,186 @@ class MainWindow(QMainWindow):
             else:
                 self.open_checkpoint(path)
         event.acceptProposedAction()
+
+    # ---- feeding the compare and training-run views -----------------------------------
+
+    def _codecs(self) -> list:
+        return [e.codec for e in self.workbench.entries.values() if e.codec is not None]
+
+    def _feed_compare(self, *_args) -> None:
+        codecs = self._codecs()
+        key = (self.workbench.text_sha, tuple((c.name, c.sha256, c.path) for c in codecs))
+        if key != self._compare_key:
+            self._compare_key = key
+            self.compare.set_inputs(codecs, self.workbench.text, self.workbench.text_source)
+
+    def _entry_changed(self, _path: str) -> None:
+        self._feed_compare()
+        self._attach_pending()
+
+    def _text_changed(self) -> None:
+        self.trend.set_text(self.workbench.text, self.workbench.text_source)
+        self._feed_compare()
+
+    def _attach_pending(self) -> None:
+        """Give saved sweeps (from a workspace) to their checkpoints once those are open."""
+        pending, self._pending_sweeps = self._pending_sweeps, []
+        # attaching emits entry_changed, which comes back here: only what is still unattached is retried
+        self._pending_sweeps = [r for r in pending if self.workbench.attach_sweep(r) is None] + self._pending_sweeps
+
+    # ---- reports, workspaces and saved results ------------------------------------------
+
+    def shown_sweeps(self) -> list[SweepResult]:
+        """Every sweep held (the checkpoints' and a saved one on show), the current first."""
+        entry = self.workbench.entry()
+        sweeps = [entry.sweep] if entry is not None and entry.sweep is not None else []
+        sweeps += [e.sweep for e in self.workbench.entries.values() if e.sweep is not None and e.sweep not in sweeps]
+        if self.sweep.result is not None and self.sweep.result not in sweeps:
+            sweeps.insert(0, self.sweep.result)
+        return sweeps
+
+    def report_inputs(self) -> dict:
+        sweeps = self.shown_sweeps()
+        if sweeps:  # a report plots sweeps of one noise model together
+            sweeps = [r for r in sweeps if r.settings.noise == sweeps[0].settings.noise]
+        trend_noise = (self.trend.settings_used.noise if self.trend.settings_used is not None
+                       else self.trend.settings_dict()["noise"])
+        return {"sweeps": sweeps, "comparison": self.compare.comparison, "trend_points": list(self.trend.points),
+                "trend_noise": trend_noise}
+
+    def save_report(self, path: str | Path | None = None, force: bool = False) -> Path | None:
+        """Write the HTML report (asking where when `path` is None); None if not written."""
+        try:
+            if path is None:
+                written = report_actions.ask_save_report(self, **self.report_inputs())
+            else:
+                written = report_actions.save_report(path, force=force, **self.report_inputs())
+        except (ChunkscopeError, FileExistsError, OSError) as exc:
+            self.show_error(str(exc))
+            return None
+        if written is not None:
+            self.statusBar().showMessage(f"report saved to {written}", 8000)
+        return written
+
+    def save_report_dialog(self) -> None:
+        self.save_report()
+
+    def make_workspace(self):
+        sweeps: dict[str, SweepResult] = {}
+        for path, entry in self.workbench.entries.items():
+            if entry.sweep is not None:
+                sweeps[path] = entry.sweep
+        if self.sweep.result is not None and self.sweep.result not in sweeps.values():
+            sweeps[f"saved {self.sweep.result.codec_name}"] = self.sweep.result
+        settings = {"sweep": self.sweep.settings_dict(), "live": self.live.settings_dict(),
+                    "compare": self.compare.settings_dict(), "trend": self.trend.settings_dict(),
+                    "current": self.workbench.current, "view": self.current_view(),
+                    "shown_sweep": next((k for k, v in sweeps.items() if v is self.sweep.result), "")}
+        return report_actions.make_workspace(
+            codecs=self._codecs(), text=self.workbench.text, text_source=self.workbench.text_source, settings=settings,
+            sweeps=sweeps, comparison=self.compare.comparison, trend_points=self.trend.points,
+            trend_folder=self.trend.folder)
+
+    def save_workspace(self, path: str | Path | None = None, force: bool = False) -> Path | None:
+        try:
+            workspace = self.make_workspace()
+            if path is None:
+                written = report_actions.ask_save_workspace(self, workspace)
+            else:
+                written = report_actions.save_workspace_file(workspace, path, force=force)
+        except (ChunkscopeError, FileExistsError, OSError) as exc:
+            self.show_error(str(exc))
+            return None
+        if written is not None:
+            self.statusBar().showMessage(f"workspace saved to {written}", 8000)
+        return written
+
+    def save_workspace_dialog(self) -> None:
+        self.save_workspace()
+
+    def open_workspace_dialog(self) -> None:
+        path, _ = QFileDialog.getOpenFileName(self, "Open workspace", str(self.settings.value("last_dir", "")),
+                                              f"{report_actions.WORKSPACE_FILTER};;All files (*)")
+        if path:
+            self.open_workspace(path)
+
+    def open_workspace(self, path: str | Path) -> bool:
+        """Restore a saved workspace: its text, the checkpoints still there, and every saved
+        result shown as saved (nothing is recomputed)."""
+        try:
+            workspace, problems = report_actions.open_workspace_file(path)
+        except (ChunkscopeError, OSError) as exc:
+            self.show_error(str(exc))
+            return False
+        self.message.hide()
+        settings = workspace.settings or {}
+        for key, target in (("sweep", self.sweep), ("live", self.live), ("compare", self.compare), ("trend", self.trend)):
+            if isinstance(settings.get(key), dict):
+                target.restore(settings[key])
+        if workspace.text and text_sha256(workspace.text) != self.workbench.text_sha:
+            if not self.workbench.set_text(workspace.text, workspace.text_source or "workspace text"):
+                return False
+        self._pending_sweeps = list(workspace.sweeps.values())
+        for checkpoint in workspace.checkpoints:
+            if Path(checkpoint["path"]).is_file():
+                self.workbench.open_checkpoint(checkpoint["path"], select=False)
+        self._attach_pending()
+        current = str(settings.get("current", ""))
+        if current in self.workbench.entries:
+            self.workbench.select(current)
+        shown = workspace.sweeps.get(str(settings.get("shown_sweep", ""))) or workspace.sweeps.get(current)
+        if shown is None and workspace.sweeps:
+            shown = next(iter(workspace.sweeps.values()))
+        entry = self.workbench.entry()
+        if shown is not None and (entry is None or entry.sweep is not shown):
+            self.sweep.set_saved_result(shown)
+        if workspace.comparison is not None:
+            self.compare.set_comparison(workspace.comparison)
+        if workspace.trend_points:
+            self.trend.set_points(workspace.trend_points, workspace.trend_folder)
+        view = str(settings.get("view", ""))
+        if view in self.panels:
+            self.show_view(view)
+        if problems:
+            self.show_error(" ".join(problems))
+        self.statusBar().showMessage(f"workspace {Path(path).name} opened", 8000)
+        return True
+
+    def open_sweep_folder_dialog(self) -> None:
+        folder = QFileDialog.getExistingDirectory(self, "Open a sweep folder (written by chunkscope sweep)",
+                                                  str(self.settings.value("last_dir", "")))
+        if folder:
+            self.open_sweep_folder(folder)
+
+    def open_sweep_folder(self, folder: str | Path) -> list[SweepResult]:
+        """Show the sweep(s) in a folder written by `chunkscope sweep --out` (the folder of one
+        checkpoint, or the --out folder holding one per checkpoint)."""
+        folder = Path(folder)
+        subfolders = [] if (folder / "sweep.json").is_file() else sorted(
+            p for p in folder.iterdir() if (p / "sweep.json").is_file()) if folder.is_dir() else []
+        try:
+            results = [report_actions.open_sweep_folder(p) for p in (subfolders or [folder])]
+        except (ChunkscopeError, OSError) as exc:
+            self.show_error(str(exc))
+            return []
+        self.message.hide()
+        attached = [self.workbench.attach_sweep(r) for r in results]
+        first = results[0]
+        if attached[0] is not None:
+            self.workbench.select(attached[0])
+            if self.sweep.result is not first:
+                self.sweep.show_result(first)
+        else:
+            self.sweep.set_saved_result(first)
+        self.show_view("sweep")
+        loose = [r.codec_name for r, a in zip(results, attached) if a is None]
+        if loose:
+            self.statusBar().showMessage(
+                f"{', '.join(loose)}: shown in the Sweep view only; open the same checkpoint on the same text to see "
+                "its token failures and latent space.", 12000)
+        else:
+            self.statusBar().showMessage(f"opened {len(results)} saved sweep(s) from {folder.name}", 8000)
+        return results
 
     # ---- views and messages --------------------------------------------------------------
 
