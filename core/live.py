@@ -12,7 +12,6 @@ import torch
 from core.latent import Encoded, check_noise, draw_eps, noise_scale
 from core.metrics import score_logits
 from core.text import Chunks
-from core.tokenizer import token_display
 
 
 @dataclass
@@ -81,49 +80,3 @@ def perturb_once(
         top_ids=top_ids, top_probs=top_probs, token_accuracy=float(correct.mean()),
         chunk_exact_rate=exact / n, tokens=t_total, chunks=n,
     )
-
-
-def decoded_pieces(codec, chunks: Chunks, predicted: np.ndarray) -> list[str]:
-    """Readable text of each decoded token, for side-by-side views."""
-    cache: dict[int, str] = {}
-    out = []
-    for tid in predicted.tolist():
-        s = cache.get(tid)
-        if s is None:
-            s = cache[tid] = token_display(codec.tokenizer, tid)
-        out.append(s)
-    return out
-
-
-def _perturbed(codec, encoded: Encoded, sigma: float, noise: str, seed: int, draw: int, start: int, stop: int) -> torch.Tensor:
-    mean = encoded.mean[start:stop]
-    if sigma <= 0:
-        return mean
-    eps = draw_eps(seed, draw, start, stop, codec.latent_dim)
-    return mean + float(sigma) * eps * noise_scale(noise, encoded, start, stop)
-
-
-def perturb_range(
-    codec, chunks: Chunks, encoded: Encoded, sigma: float, noise: str, seed: int, draw: int, start: int, stop: int, batch: int = 1024
-) -> tuple[np.ndarray, np.ndarray]:
-    """Decoded ids and correctness of the tokens of chunks start..stop (argmax only, no top-k)."""
-    check_noise(noise, codec)
-    start, stop = max(0, start), min(stop, encoded.num_chunks)
-    k = codec.chunk_size
-    out = []
-    for a in range(start, stop, batch):
-        b = min(a + batch, stop)
-        out.append(codec.decode(_perturbed(codec, encoded, sigma, noise, seed, draw, a, b)).argmax(-1).reshape(-1))
-    t0, t1 = start * k, min(stop * k, chunks.num_tokens)
-    predicted = torch.cat(out).numpy()[: t1 - t0] if out else np.zeros(0, dtype=np.int64)
-    return predicted, predicted == chunks.token_ids[t0:t1]
-
-
-def token_alternatives(
-    codec, encoded: Encoded, token_index: int, sigma: float, noise: str, seed: int, draw: int, top_k: int = 5
-) -> list[tuple[int, float]]:
-    """The decoder's top-k (token id, probability) for one token at one setting; decodes one chunk."""
-    chunk = token_index // codec.chunk_size
-    logits = codec.decode(_perturbed(codec, encoded, sigma, noise, seed, draw, chunk, chunk + 1))[0, token_index % codec.chunk_size]
-    p, i = torch.softmax(logits, -1).topk(top_k)
-    return list(zip(i.tolist(), p.tolist()))
