@@ -10,7 +10,7 @@ import numpy as np
 import torch
 
 from core.latent import Encoded, check_noise, draw_eps, noise_scale
-from core.metrics import score_logits
+from core.metrics import log_partition
 from core.text import Chunks
 
 
@@ -64,8 +64,8 @@ def perturb_once(
         else:
             z = mean
         logits = codec.decode(z)
-        probs = torch.softmax(logits, -1)
-        p, i = probs.topk(top_k, dim=-1)
+        values, i = logits.topk(top_k, dim=-1)
+        p = torch.exp(values - log_partition(logits, values[..., 0]).unsqueeze(-1))
         pred = i[..., 0]
         t0, t1 = start * k, min(stop * k, t_total)
         m = t1 - t0

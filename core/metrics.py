@@ -62,6 +62,15 @@ class TokenScores:
 
 
 @torch.inference_mode()
+def log_partition(logits: torch.Tensor, top: torch.Tensor) -> torch.Tensor:
+    """log Σ exp(logits) over the last axis, given its max `top`; overwrites `logits`.
+
+    Terms below e^-80 of the top are floored (they change nothing in float32 and would
+    otherwise make exp produce slow subnormals)."""
+    return top + logits.sub_(top.unsqueeze(-1)).clamp_(min=EXP_FLOOR).exp_().sum(-1).log()
+
+
+@torch.inference_mode()
 def score_logits(logits: torch.Tensor, targets: torch.Tensor, inplace: bool = False):
     """argmax, top-1 confidence, NLL of the truth and Brier score per token.
 

@@ -17,6 +17,7 @@ import torch
 from core.errors import SettingsError
 from core.latent import NOISE_BLOCK, Encoded, check_noise, draw_eps, noise_scale
 from core.live import LivePerturbation
+from core.metrics import log_partition
 from core.text import Chunks
 from core.tokenizer import token_display
 
@@ -84,9 +85,9 @@ def perturb_window(
         else:
             z = mean
         logits = codec.decode(z)
-        # top-k on logits and probabilities from logsumexp: same ranking as softmax, fewer passes
+        # top-k on logits and probabilities from the log-partition: same ranking as softmax, fewer passes
         values, ids = logits.topk(top_k, dim=-1)
-        probs = torch.exp(values - torch.logsumexp(logits, -1, keepdim=True))
+        probs = torch.exp(values - log_partition(logits, values[..., 0]).unsqueeze(-1))
         a, b = start * k - t0, min(stop * k, t_total) - t0
         m = b - a
         predicted[a:b] = ids[..., 0].reshape(-1)[:m].numpy()
