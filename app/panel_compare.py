@@ -13,12 +13,11 @@ import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtGui import QColor, QIcon, QPixmap, QTextCharFormat
 from PySide6.QtWidgets import (
-    QAbstractItemView, QCheckBox, QComboBox, QDoubleSpinBox, QFrame, QHBoxLayout, QHeaderView, QLabel,
-    QListWidget, QListWidgetItem, QProgressBar, QPushButton, QSpinBox, QSplitter, QTableWidget,
-    QTableWidgetItem, QVBoxLayout, QWidget,
+    QAbstractItemView, QCheckBox, QComboBox, QFrame, QHBoxLayout, QHeaderView, QLabel, QListWidget,
+    QListWidgetItem, QProgressBar, QPushButton, QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
-from app.controls import caption, spin_box
+from app.controls import GridControls, caption
 from app.export import add_export_menu
 from app.plotaxes import use_sigma_axis
 from app.style import PALETTE, faded, fmt_percent, legend, pen, plot_widget
@@ -29,7 +28,6 @@ from core.errors import SettingsError
 from core.report import provenance_caption
 from core.sweep import SweepResult
 from core.text import text_sha256
-from core.views import sigma_grid
 
 DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 16, "spacing": "log", "zero": True, "repeats": 2, "seed": 0,
             "main_noise": "data-scale"}
@@ -209,38 +207,15 @@ class ComparePanel(QWidget):
         pick.addWidget(self.reference)
         cv.addLayout(pick)
 
-        row = QHBoxLayout()
-        row.setSpacing(8)
-        self.start = spin_box(QDoubleSpinBox())
-        self.start.setDecimals(4)
-        self.start.setRange(0.0, 1e4)
-        self.stop = spin_box(QDoubleSpinBox())
-        self.stop.setDecimals(4)
-        self.stop.setRange(0.0, 1e4)
-        self.points = spin_box(QSpinBox())
-        self.points.setRange(1, 400)
-        self.spacing = QComboBox()
-        self.spacing.addItems(["log", "linear"])
-        self.zero = QCheckBox("and 0")
-        self.repeats = spin_box(QSpinBox())
-        self.repeats.setRange(1, 1000)
-        self.seed = spin_box(QSpinBox())
-        self.seed.setRange(0, 2**31 - 1)
-        self.main_noise = QComboBox()
-        self.main_noise.addItems(["data-scale", "isotropic"])
-        self.main_noise.setToolTip("the noise model of the curves, the paired tests and the text view; "
-                                   "tolerances are shown under both")
-        for box, width in ((self.start, 64), (self.stop, 64), (self.points, 44), (self.repeats, 48), (self.seed, 64)):
-            box.setMaximumWidth(width)
-        for label, widget in (("relative σ from", self.start), ("to", self.stop), ("points", self.points),
-                              ("spacing", self.spacing)):
-            row.addWidget(caption(label))
-            row.addWidget(widget)
-        row.addWidget(self.zero)
-        row.addSpacing(10)
-        for label, widget in (("repeats", self.repeats), ("seed", self.seed), ("main noise", self.main_noise)):
-            row.addWidget(caption(label))
-            row.addWidget(widget)
+        self.grid_controls = GridControls(
+            DEFAULTS, noise_key="main_noise", noise_label="main noise", noise_choices=("data-scale", "isotropic"),
+            noise_tip="the noise model of the curves, the paired tests and the text view; "
+                      "tolerances are shown under both",
+            sigma_label="relative σ from", order=("repeats", "seed", "noise"))
+        g = self.grid_controls
+        self.start, self.stop, self.points, self.spacing, self.zero = g.start, g.stop, g.points, g.spacing, g.zero
+        self.repeats, self.seed, self.main_noise = g.repeats, g.seed, g.noise
+        row = g.layout()  # one row; the run controls follow the grid's
         row.addSpacing(10)
         self.run_button = QPushButton("Compare")
         self.run_button.setObjectName("primary")
@@ -258,7 +233,7 @@ class ComparePanel(QWidget):
         self.log_box.setChecked(True)
         self.log_box.toggled.connect(self._log_toggled)
         row.addWidget(self.log_box)
-        cv.addLayout(row)
+        cv.addWidget(g)
         outer.addWidget(controls)
 
         self.warning = QFrame()
@@ -429,28 +404,13 @@ class ComparePanel(QWidget):
         return ticked
 
     def settings_dict(self) -> dict:
-        return {"start": self.start.value(), "stop": self.stop.value(), "points": self.points.value(),
-                "spacing": self.spacing.currentText(), "zero": self.zero.isChecked(), "repeats": self.repeats.value(),
-                "seed": self.seed.value(), "main_noise": self.main_noise.currentText()}
+        return self.grid_controls.settings_dict()
 
     def restore(self, values: dict) -> None:
-        merged = {**DEFAULTS, **(values or {})}
-        try:
-            self.start.setValue(float(merged["start"]))
-            self.stop.setValue(float(merged["stop"]))
-            self.points.setValue(int(merged["points"]))
-            self.spacing.setCurrentText(str(merged["spacing"]))
-            self.zero.setChecked(str(merged["zero"]).lower() in ("true", "1"))
-            self.repeats.setValue(int(merged["repeats"]))
-            self.seed.setValue(int(merged["seed"]))
-            self.main_noise.setCurrentText(str(merged["main_noise"]))
-        except (TypeError, ValueError, KeyError):
-            if values is not DEFAULTS:
-                self.restore(DEFAULTS)
+        self.grid_controls.restore(values)
 
     def sigmas(self) -> tuple[float, ...]:
-        s = self.settings_dict()
-        return sigma_grid(s["start"], s["stop"], s["points"], s["spacing"], s["zero"])
+        return self.grid_controls.sigmas()
 
     def _inputs_key(self, codecs: Sequence) -> tuple:
         return (text_sha256(self.text) if self.text else "", tuple(self._codec_key(c) for c in codecs))

@@ -8,29 +8,13 @@ import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import QFrame, QGridLayout, QHBoxLayout, QLabel, QVBoxLayout, QWidget
 
+from app.controls import figure_box
 from app.export import add_export_menu
 from app.state import Workbench
 from app.style import PALETTE, faded, fmt_sigma, log_ticks, pen, plot_widget
 import core
 from core.report import provenance_caption
 from core.health import ACTIVE_THRESHOLD, expected_noise_norm
-
-
-def _figure(caption: str) -> tuple[QWidget, QLabel, QLabel]:
-    box = QWidget()
-    layout = QVBoxLayout(box)
-    layout.setContentsMargins(0, 0, 24, 0)
-    layout.setSpacing(0)
-    cap = QLabel(caption)
-    cap.setObjectName("caption")
-    value = QLabel("—")
-    value.setObjectName("figure")
-    note = QLabel("")
-    note.setObjectName("faint")
-    layout.addWidget(cap)
-    layout.addWidget(value)
-    layout.addWidget(note)
-    return box, value, note
 
 
 class LatentPanel(QWidget):
@@ -52,15 +36,15 @@ class LatentPanel(QWidget):
         figures.setObjectName("card")
         row = QHBoxLayout(figures)
         row.setContentsMargins(14, 10, 14, 10)
-        box, self.active_value, self.active_note = _figure("active dimensions")
+        box, self.active_value, self.active_note = figure_box("active dimensions", 24)
         row.addWidget(box)
-        box, self.kl_value, self.kl_note = _figure("KL to N(0, I) per chunk")
+        box, self.kl_value, self.kl_note = figure_box("KL to N(0, I) per chunk", 24)
         row.addWidget(box)
-        box, self.rms_value, self.rms_note = _figure("latent RMS")
+        box, self.rms_value, self.rms_note = figure_box("latent RMS", 24)
         row.addWidget(box)
-        box, self.nn_value, self.nn_note = _figure("nearest-neighbour half-distance, median")
+        box, self.nn_value, self.nn_note = figure_box("nearest-neighbour half-distance, median", 24)
         row.addWidget(box)
-        box, self.noise_value, self.noise_note = _figure("noise norm at the 99 % tolerance")
+        box, self.noise_value, self.noise_note = figure_box("noise norm at the 99 % tolerance", 24)
         row.addWidget(box)
         row.addStretch(1)
         outer.addWidget(figures)

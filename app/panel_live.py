@@ -18,6 +18,7 @@ from PySide6.QtWidgets import (
 )
 from superqt import QLabeledDoubleSlider
 
+from app.controls import figure_box
 from app.state import Workbench
 from app.style import PALETTE, fmt_percent, show_piece
 from app.tokentext import TokenText, wrong_decoded_format, wrong_original_format
@@ -47,23 +48,6 @@ def _live(task: Task, codec, chunks: Chunks, encoded, sigma: float, noise: str, 
             return None
         windows.append(w)
     return merge_windows(chunks, windows)
-
-
-def _stat(title: str) -> tuple[QWidget, QLabel, QLabel]:
-    box = QWidget()
-    layout = QVBoxLayout(box)
-    layout.setContentsMargins(0, 0, 18, 0)
-    layout.setSpacing(0)
-    caption = QLabel(title)
-    caption.setObjectName("caption")
-    value = QLabel("—")
-    value.setObjectName("figure")
-    note = QLabel("")
-    note.setObjectName("faint")
-    layout.addWidget(caption)
-    layout.addWidget(value)
-    layout.addWidget(note)
-    return box, value, note
 
 
 class LivePanel(QWidget):
@@ -152,11 +136,11 @@ class LivePanel(QWidget):
 
         stats = QHBoxLayout()
         stats.setSpacing(0)
-        box, self.accuracy_value, self.accuracy_note = _stat("token accuracy")
+        box, self.accuracy_value, self.accuracy_note = figure_box("token accuracy", 18)
         stats.addWidget(box)
-        box, self.exact_value, self.exact_note = _stat("chunk exact match")
+        box, self.exact_value, self.exact_note = figure_box("chunk exact match", 18)
         stats.addWidget(box)
-        box, self.wrong_value, self.wrong_note = _stat("wrong tokens")
+        box, self.wrong_value, self.wrong_note = figure_box("wrong tokens", 18)
         self.wrong_value.setObjectName("figureAccent")
         stats.addWidget(box)
         grid.addLayout(stats, 0, 6, 3, 1)

@@ -6,11 +6,10 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import (
-    QAbstractSpinBox,
-    QCheckBox, QComboBox, QDoubleSpinBox, QFrame, QGridLayout, QHBoxLayout, QLabel, QProgressBar, QPushButton,
-    QSpinBox, QVBoxLayout, QWidget,
+    QCheckBox, QFrame, QGridLayout, QHBoxLayout, QLabel, QProgressBar, QPushButton, QVBoxLayout, QWidget,
 )
 
+from app.controls import GridControls, caption
 from app.export import add_export_menu
 from app.state import Workbench
 from app.style import PALETTE, faded, fmt_percent, fmt_sigma, legend, log_ticks, pen, plot_widget, series_colours
@@ -18,17 +17,11 @@ from core.errors import SettingsError
 from core.latent import NOISE_MODELS
 from core.report import provenance_caption
 from core.sweep import SweepResult, SweepSettings
-from core.views import error_rate_floor, sigma_grid
+from core.views import error_rate_floor
 
 DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 24, "spacing": "log", "zero": True, "repeats": 2,
             "noise": "data-scale", "seed": 0}
 LEVEL_NAMES = {0.999: "99.9 %", 0.99: "99 %", 0.9: "90 %"}
-
-
-def _caption(text: str) -> QLabel:
-    label = QLabel(text)
-    label.setObjectName("caption")
-    return label
 
 
 class SweepPanel(QWidget):
@@ -57,53 +50,19 @@ class SweepPanel(QWidget):
 
         controls = QFrame()
         controls.setObjectName("card")
-        grid = QGridLayout(controls)
-        grid.setContentsMargins(14, 8, 14, 8)
-        grid.setHorizontalSpacing(8)
-        grid.setVerticalSpacing(6)
-        self.start = QDoubleSpinBox()
-        self.start.setButtonSymbols(QAbstractSpinBox.ButtonSymbols.NoButtons)
-        self.start.setDecimals(4)
-        self.start.setRange(0.0, 1e4)
-        self.stop = QDoubleSpinBox()
-        self.stop.setButtonSymbols(QAbstractSpinBox.ButtonSymbols.NoButtons)
-        self.stop.setDecimals(4)
-        self.stop.setRange(0.0, 1e4)
-        self.points = QSpinBox()
-        self.points.setButtonSymbols(QAbstractSpinBox.ButtonSymbols.NoButtons)
-        self.points.setRange(1, 400)
-        self.spacing = QComboBox()
-        self.spacing.addItems(["log", "linear"])
-        self.zero = QCheckBox("and σ = 0")
-        self.repeats = QSpinBox()
-        self.repeats.setButtonSymbols(QAbstractSpinBox.ButtonSymbols.NoButtons)
-        self.repeats.setRange(1, 1000)
-        self.noise = QComboBox()
-        self.noise.addItems(list(NOISE_MODELS))
-        self.seed = QSpinBox()
-        self.seed.setButtonSymbols(QAbstractSpinBox.ButtonSymbols.NoButtons)
-        self.seed.setRange(0, 2**31 - 1)
-        title = QLabel("Grid")
-        title.setObjectName("title")
-        grid.addWidget(title, 0, 0)
-        col = 1
-        for label, widget in (("σ from", self.start), ("to", self.stop), ("points", self.points), ("spacing", self.spacing)):
-            grid.addWidget(_caption(label), 0, col, Qt.AlignmentFlag.AlignRight)
-            grid.addWidget(widget, 0, col + 1)
-            col += 2
-        grid.addWidget(self.zero, 0, col)
-        title = QLabel("Noise")
-        title.setObjectName("title")
-        grid.addWidget(title, 1, 0)
-        col = 1
-        for label, widget in (("model", self.noise), ("repeats", self.repeats), ("seed", self.seed)):
-            grid.addWidget(_caption(label), 1, col, Qt.AlignmentFlag.AlignRight)
-            grid.addWidget(widget, 1, col + 1)
-            col += 2
+        card = QVBoxLayout(controls)
+        card.setContentsMargins(14, 8, 14, 8)
+        self.grid_controls = GridControls(DEFAULTS, noise_label="model", order=("noise", "repeats", "seed"),
+                                          zero_text="and σ = 0", two_rows=True)
+        card.addWidget(self.grid_controls)
+        g = self.grid_controls
+        self.start, self.stop, self.points, self.spacing, self.zero = g.start, g.stop, g.points, g.spacing, g.zero
+        self.repeats, self.noise, self.seed = g.repeats, g.noise, g.seed
+        grid = g.layout()  # the grid fills columns 0-9 of two rows; the view's own controls go beside them
         self.log_box = QCheckBox("log σ axis")
         self.log_box.setChecked(True)
         self.log_box.toggled.connect(self._log_toggled)
-        grid.addWidget(self.log_box, 1, col + 1)
+        grid.addWidget(self.log_box, 1, 8)
         grid.setColumnStretch(10, 1)
         self.run_button = QPushButton("Run sweep")
         self.run_button.setObjectName("primary")
@@ -131,7 +90,7 @@ class SweepPanel(QWidget):
         for level in (0.999, 0.99, 0.9):
             box = QVBoxLayout()
             box.setSpacing(0)
-            cap = _caption(f"tolerance at {LEVEL_NAMES[level]}")
+            cap = caption(f"tolerance at {LEVEL_NAMES[level]}")
             value = QLabel("—")
             value.setObjectName("figure")
             box.addWidget(cap)
@@ -193,28 +152,14 @@ class SweepPanel(QWidget):
     # ---- settings ------------------------------------------------------------------------
 
     def settings_dict(self) -> dict:
-        return {"start": self.start.value(), "stop": self.stop.value(), "points": self.points.value(),
-                "spacing": self.spacing.currentText(), "zero": self.zero.isChecked(), "repeats": self.repeats.value(),
-                "noise": self.noise.currentText(), "seed": self.seed.value()}
+        return self.grid_controls.settings_dict()
 
     def restore(self, values: dict) -> None:
-        merged = {**DEFAULTS, **(values or {})}
-        try:
-            self.start.setValue(float(merged["start"]))
-            self.stop.setValue(float(merged["stop"]))
-            self.points.setValue(int(merged["points"]))
-            self.spacing.setCurrentText(str(merged["spacing"]))
-            self.zero.setChecked(str(merged["zero"]).lower() in ("true", "1"))
-            self.repeats.setValue(int(merged["repeats"]))
-            self.noise.setCurrentText(str(merged["noise"]))
-            self.seed.setValue(int(merged["seed"]))
-        except (TypeError, ValueError, KeyError):
-            self.restore(DEFAULTS) if values is not DEFAULTS else None
+        self.grid_controls.restore(values)
 
     def sweep_settings(self) -> SweepSettings:
         s = self.settings_dict()
-        sigmas = sigma_grid(s["start"], s["stop"], s["points"], s["spacing"], s["zero"])
-        return SweepSettings(sigmas=sigmas, repeats=s["repeats"], noise=s["noise"], seed=s["seed"])
+        return SweepSettings(sigmas=self.grid_controls.sigmas(), repeats=s["repeats"], noise=s["noise"], seed=s["seed"])
 
     # ---- running -------------------------------------------------------------------------
 

@@ -12,22 +12,19 @@ import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (
-    QAbstractItemView, QCheckBox, QComboBox, QDoubleSpinBox, QFileDialog, QFrame, QHBoxLayout,
-    QHeaderView, QProgressBar, QPushButton, QSpinBox, QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout,
-    QWidget,
+    QAbstractItemView, QFileDialog, QFrame, QHBoxLayout, QHeaderView, QProgressBar, QPushButton, QSplitter,
+    QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
 import core
-from app.controls import caption, spin_box
+from app.controls import GridControls, caption
 from app.export import add_export_menu
 from app.style import PALETTE, fmt_percent, legend, pen, plot_widget
 from app.workers import Runner, Task
 from core.errors import ChunkscopeError
-from core.latent import NOISE_MODELS
 from core.sweep import SweepSettings
 from core.text import demo_text
 from core.trend import TrendPoint, checkpoints_in, sort_points, trend
-from core.views import sigma_grid
 
 DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 12, "spacing": "log", "zero": True, "repeats": 2,
             "noise": "data-scale", "seed": 0}
@@ -121,35 +118,11 @@ class TrendPanel(QWidget):
         top.addWidget(self.folder_label, 1)
         cv.addLayout(top)
 
-        row = QHBoxLayout()
-        row.setSpacing(8)
-        self.start = spin_box(QDoubleSpinBox(), 64)
-        self.start.setDecimals(4)
-        self.start.setRange(0.0, 1e4)
-        self.stop = spin_box(QDoubleSpinBox(), 64)
-        self.stop.setDecimals(4)
-        self.stop.setRange(0.0, 1e4)
-        self.points_box = spin_box(QSpinBox(), 44)
-        self.points_box.setRange(1, 400)
-        self.spacing = QComboBox()
-        self.spacing.addItems(["log", "linear"])
-        self.zero = QCheckBox("and 0")
-        self.zero.setToolTip("accuracy at σ = 0 needs 0 on the grid")
-        self.repeats = spin_box(QSpinBox(), 48)
-        self.repeats.setRange(1, 1000)
-        self.noise = QComboBox()
-        self.noise.addItems(list(NOISE_MODELS))
-        self.seed = spin_box(QSpinBox(), 64)
-        self.seed.setRange(0, 2**31 - 1)
-        for label, widget in (("σ from", self.start), ("to", self.stop), ("points", self.points_box),
-                              ("spacing", self.spacing)):
-            row.addWidget(caption(label))
-            row.addWidget(widget)
-        row.addWidget(self.zero)
-        row.addSpacing(10)
-        for label, widget in (("repeats", self.repeats), ("noise", self.noise), ("seed", self.seed)):
-            row.addWidget(caption(label))
-            row.addWidget(widget)
+        self.grid_controls = GridControls(DEFAULTS, zero_tip="accuracy at σ = 0 needs 0 on the grid")
+        g = self.grid_controls  # self.points holds the measured checkpoints, so the points box is points_box
+        self.start, self.stop, self.points_box, self.spacing, self.zero = g.start, g.stop, g.points, g.spacing, g.zero
+        self.repeats, self.noise, self.seed = g.repeats, g.noise, g.seed
+        row = g.layout()  # one row; the run controls follow the grid's
         row.addSpacing(10)
         self.run_button = QPushButton("Measure run")
         self.run_button.setObjectName("primary")
@@ -163,7 +136,7 @@ class TrendPanel(QWidget):
         self.progress.setFixedHeight(6)
         self.progress.setMinimumWidth(90)
         row.addWidget(self.progress, 1)
-        cv.addLayout(row)
+        cv.addWidget(g)
         outer.addWidget(controls)
 
         self.status = caption("")
@@ -211,29 +184,15 @@ class TrendPanel(QWidget):
     # ---- settings ------------------------------------------------------------------------
 
     def settings_dict(self) -> dict:
-        return {"start": self.start.value(), "stop": self.stop.value(), "points": self.points_box.value(),
-                "spacing": self.spacing.currentText(), "zero": self.zero.isChecked(), "repeats": self.repeats.value(),
-                "noise": self.noise.currentText(), "seed": self.seed.value()}
+        return self.grid_controls.settings_dict()
 
     def restore(self, values: dict) -> None:
-        merged = {**DEFAULTS, **(values or {})}
-        try:
-            self.start.setValue(float(merged["start"]))
-            self.stop.setValue(float(merged["stop"]))
-            self.points_box.setValue(int(merged["points"]))
-            self.spacing.setCurrentText(str(merged["spacing"]))
-            self.zero.setChecked(str(merged["zero"]).lower() in ("true", "1"))
-            self.repeats.setValue(int(merged["repeats"]))
-            self.noise.setCurrentText(str(merged["noise"]))
-            self.seed.setValue(int(merged["seed"]))
-        except (TypeError, ValueError, KeyError):
-            if values is not DEFAULTS:
-                self.restore(DEFAULTS)
+        self.grid_controls.restore(values)
 
     def sweep_settings(self) -> SweepSettings:
         s = self.settings_dict()
-        sigmas = sigma_grid(s["start"], s["stop"], s["points"], s["spacing"], s["zero"])
-        return SweepSettings(sigmas=sigmas, repeats=s["repeats"], noise=s["noise"], seed=s["seed"]).validated()
+        return SweepSettings(sigmas=self.grid_controls.sigmas(), repeats=s["repeats"], noise=s["noise"],
+                             seed=s["seed"]).validated()
 
     def set_text(self, text: str, text_source: str = "") -> None:
         """The evaluation text every checkpoint is swept on (the demo text until this is called)."""
