@@ -361,6 +361,9 @@ def main(argv: list[str] | None = None) -> int:
     except (SweepCancelled, KeyboardInterrupt):
         print("\nchunkscope: stopped; nothing was written.", file=sys.stderr)
         return 130
+    except BrokenPipeError:  # output piped into a pager or `head` that stopped reading
+        sys.stderr.close()
+        return 0
 
 
 if __name__ == "__main__":
