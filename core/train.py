@@ -114,8 +114,8 @@ RECIPES: dict[str, Recipe] = {
         free_bits=0.15,
         latent_dropout=0.2,
         token_mask_prob=0.05,
-        steps=5_000,
-        minutes=30.0,
+        steps=6_500,
+        minutes=40.0,
         why="Variational with a small KL weight, a per-dimension KL floor, latent dropout and input-token "
         "masking in a 128-dim latent: it reconstructs about as well as plain and takes several times more "
         "data-scale noise.",
