@@ -22,7 +22,6 @@ def make_settings(path: str | os.PathLike | None = None):
 
 
 def application():
-    import torch
     from PySide6.QtWidgets import QApplication
 
     from app.style import apply_theme
@@ -33,9 +32,8 @@ def application():
         app.setApplicationName("chunkscope")
         app.setOrganizationName("chunkscope")
     apply_theme(app)
-    # tasks run side by side (the live view while a sweep runs), so each decodes on one core:
-    # on two shared cores a two-thread decode of the live window measured ~4x slower than one
-    torch.set_num_threads(1)
+    # torch is not imported here: it loads in the first background task (core.deferred), and
+    # each task thread sets its own thread count (app.workers)
     return app
 
 

@@ -17,11 +17,12 @@ from app.style import PALETTE
 
 
 def _entry_summary(entry: Entry) -> tuple[str, str]:
-    if entry.codec is None:
+    if entry.codec is None and entry.info is None:
         return entry.name, "opening…"
-    c = entry.codec.config
+    c = entry.codec.config if entry.codec is not None else entry.info.config
     kind = "variational" if c.variational else "plain"
-    return entry.name, f"{kind} · K {c.chunk_size} · D {c.latent_dim} · {entry.codec.sha256[:8]}"
+    last = entry.codec.sha256[:8] if entry.codec is not None else "loading weights…"
+    return entry.name, f"{kind} · K {c.chunk_size} · D {c.latent_dim} · {last}"
 
 
 class ElidedLabel(QLabel):
@@ -78,6 +79,7 @@ class DetailsView(QScrollArea):
         self.setStyleSheet(f"QScrollArea#details {{ background: {PALETTE.surface}; border: 1px solid {PALETTE.line}; "
                            "border-radius: 6px; }")
         self._rows: list[tuple[str, str]] = []
+        self._shown: str | None = None  # what is on screen, to skip rebuilding the same details
         self._values: dict[str, QLabel] = {}
         self._show(QWidget())
 
@@ -90,6 +92,9 @@ class DetailsView(QScrollArea):
         self.setWidget(inner)
 
     def set_message(self, text: str) -> None:
+        if self._shown == text:
+            return
+        self._shown = text
         self._rows, self._values = [("", text)], {}
         inner = QWidget()
         layout = QVBoxLayout(inner)
@@ -103,7 +108,12 @@ class DetailsView(QScrollArea):
 
     def set_sections(self, sections: list[tuple[str, list[tuple[str, object]], str, bool]]) -> None:
         """(title, rows, note when rows is empty, stacked) per section; the first title may be
-        empty. Stacked rows put the key above its value (card keys are long dotted names)."""
+        empty. Stacked rows put the key above its value (card keys are long dotted names).
+        The same sections again change nothing (opening several files asks several times)."""
+        key = repr(sections)
+        if self._shown == key:
+            return
+        self._shown = key
         self._rows, self._values = [], {}
         inner = QWidget()
         layout = QVBoxLayout(inner)
@@ -286,11 +296,12 @@ class ModelsPanel(QWidget):
         if entry is None:
             self.details.set_message("No checkpoint is open.")
             return
-        if entry.codec is None:
+        if entry.codec is None and entry.info is None:
             self.details.set_message(f"Opening {Path(entry.path).name}…")
             return
         codec = entry.codec
-        c = codec.config
+        c = codec.config if codec is not None else entry.info.config
+        card = codec.card if codec is not None else entry.info.card
         rows = [
             ("file", Path(entry.path).name),
             ("architecture", f"{c.arch}, {'variational' if c.variational else 'plain'} autoencoder"),
@@ -298,13 +309,13 @@ class ModelsPanel(QWidget):
             ("latent dim D", c.latent_dim),
             ("vocabulary", f"{c.vocab_size:,}"),
             ("embed / width / depth", f"{c.embed_dim} / {c.width} / {c.depth}"),
-            ("parameters", f"{codec.num_parameters:,}"),
-            ("sha256", codec.sha256),
+            ("parameters", f"{codec.num_parameters:,}" if codec is not None else "loading weights…"),
+            ("sha256", codec.sha256 if codec is not None else "loading weights…"),
         ]
         if entry.encoded is not None:
             rows.append(("latent RMS", f"{entry.encoded.latent_rms:.4g}"))
-        card = self._flatten(codec.card) if codec.card else []
-        self.details.set_sections([("", rows, "", False), ("CARD", card, "This checkpoint carries no card.", True)])
+        card_rows = self._flatten(card) if card else []
+        self.details.set_sections([("", rows, "", False), ("CARD", card_rows, "This checkpoint carries no card.", True)])
 
     @staticmethod
     def _flatten(card: dict, prefix: str = "") -> list[tuple[str, object]]:

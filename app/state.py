@@ -10,8 +10,8 @@ from pathlib import Path
 
 from PySide6.QtCore import QObject, Signal
 
-from core.checkpoint import Codec, load_codec
-from core.errors import TextError
+from core.checkpoint import CheckpointInfo, Codec, load_codec, read_checkpoint_info
+from core.errors import CheckpointError, TextError
 from core.health import LatentHealth, latent_health
 from core.latent import Encoded, encode_chunks
 from core.sweep import SweepResult, SweepSettings, run_sweep
@@ -45,6 +45,7 @@ class Entry:
 
     path: str
     codec: Codec | None = None
+    info: CheckpointInfo | None = None  # the header, read at once when opened (the weights load in a task)
     error: str = ""
     text_sha: str = ""
     chunks: Chunks | None = None
@@ -142,6 +143,10 @@ class Workbench(QObject):
             return
         entry = self.entries.get(path) or Entry(path=path)
         entry.error = ""
+        try:
+            entry.info = read_checkpoint_info(path)
+        except CheckpointError:
+            entry.info = None  # the loading task says what is wrong, in the same words
         self.entries[path] = entry
         entry.busy.add("load")
         task = Task(f"opening {Path(path).name}", _load_and_encode, path, self.text, self.text_source)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from PySide6.QtCore import QSettings, Qt, QTimer
+from PySide6.QtCore import QEvent, QSettings, Qt, QTimer
 from PySide6.QtGui import QAction, QCloseEvent, QDragEnterEvent, QDropEvent, QKeySequence
 from PySide6.QtWidgets import (
     QDialog, QDialogButtonBox, QFileDialog, QFrame, QHBoxLayout, QLabel, QLineEdit, QMainWindow, QPlainTextEdit,
@@ -31,6 +31,7 @@ VIEWS = ("live", "sweep", "tokens", "latent", "compare", "trend")
 VIEW_TITLES = {"live": "Perturb live", "sweep": "Sweep", "tokens": "Token failures", "latent": "Latent space",
                "compare": "Compare", "trend": "Training run"}
 MAX_RECENT = 10
+START_AFTER_SHOW_MS = 1000  # queued work starts at the latest this long after the window is shown
 TEXT_SUFFIXES = {".txt", ".md", ".text", ".rst", ".csv", ".json", ".py", ".html"}
 
 
@@ -92,6 +93,12 @@ class MainWindow(QMainWindow):
         self.setAcceptDrops(True)
         self.resize(1500, 950)
         self.runner = Runner(self)
+        # work queued while the window is built starts once its first paint is done (or, for a
+        # window never shown, at the first turn of the event loop): the first task imports torch,
+        # which would hold the GIL through that paint
+        self.runner.hold()
+        self.installEventFilter(self)
+        QTimer.singleShot(0, lambda: None if self.isVisible() else self._start_queued_work())
         self.workbench = Workbench(self.runner, self)
         self.workbench.error.connect(self.show_error)
         self.closing = False
@@ -530,6 +537,17 @@ class MainWindow(QMainWindow):
         self.settings.setValue("sweep", json.dumps(self.sweep.settings_dict()))
         self.settings.setValue("live", json.dumps(self.live.settings_dict()))
         self.settings.sync()
+
+    def eventFilter(self, watched, event) -> bool:  # noqa: N802
+        if watched is self and event.type() == QEvent.Type.Paint:
+            QTimer.singleShot(0, self._start_queued_work)  # runs once this paint pass has finished
+        elif watched is self and event.type() == QEvent.Type.Show:
+            QTimer.singleShot(START_AFTER_SHOW_MS, self._start_queued_work)  # in case no paint comes
+        return False
+
+    def _start_queued_work(self) -> None:
+        self.removeEventFilter(self)
+        self.runner.release()
 
     def closeEvent(self, event: QCloseEvent) -> None:  # noqa: N802
         self.closing = True

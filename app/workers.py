@@ -11,9 +11,9 @@ import threading
 import traceback
 from typing import Any, Callable
 
-import torch
 from PySide6.QtCore import QObject, QRunnable, QThreadPool, Signal
 
+from core.deferred import torch
 from core.errors import ChunkscopeError, SweepCancelled
 
 
@@ -84,12 +84,27 @@ class Runner(QObject):
         self.pool.setMaxThreadCount(threads)
         self._tasks: set[Task] = set()
         self._lock = threading.Lock()
+        self._held: list[Task] | None = None
+
+    def hold(self) -> None:
+        """Queue tasks instead of starting them until `release` (the window's first paint
+        comes before the first task imports torch, which would compete with it for the GIL)."""
+        if self._held is None:
+            self._held = []
+
+    def release(self) -> None:
+        held, self._held = self._held, None
+        for task in held or []:
+            self.pool.start(_Runnable(task))
 
     def start(self, task: Task) -> Task:
         with self._lock:
             self._tasks.add(task)
         task.ended.connect(lambda t=task: self._forget(t))
-        self.pool.start(_Runnable(task))
+        if self._held is not None:
+            self._held.append(task)
+        else:
+            self.pool.start(_Runnable(task))
         return task
 
     def _forget(self, task: Task) -> None:
@@ -103,6 +118,7 @@ class Runner(QObject):
 
     def shutdown(self, timeout_ms: int = 5000) -> bool:
         """Cancel everything and wait for the threads; True when all stopped in time."""
+        self._held = None  # never started: nothing to wait for
         for task in self.running():
             task.cancel()
         return self.pool.waitForDone(timeout_ms)

@@ -15,14 +15,13 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import torch
 from safetensors import safe_open
-from safetensors.torch import save_file
 from tokenizers import Tokenizer
 
+from core.arch import ARCHITECTURES, ChunkMLPConfig
+from core.deferred import inference_mode, torch
 from core.errors import CheckpointError
 from core.files import staged_file
-from core.model import ARCHITECTURES, ChunkMLP, ChunkMLPConfig, build_model
 from core.tokenizer import token_byte_lengths
 
 FORMAT_VERSION = 1
@@ -31,8 +30,8 @@ KEY_CONFIG = "chunkscope.config"
 KEY_TOKENIZER = "chunkscope.tokenizer"
 KEY_CARD = "chunkscope.card"
 REQUIRED_KEYS = (KEY_FORMAT, KEY_CONFIG, KEY_TOKENIZER)
-ALLOWED_DTYPES = {"F32": torch.float32, "F16": torch.float16, "BF16": torch.bfloat16}
-SAVE_DTYPES = {"float32": torch.float32, "float16": torch.float16, "bfloat16": torch.bfloat16}
+ALLOWED_DTYPES = ("F32", "F16", "BF16")  # safetensors names of float32, float16, bfloat16
+SAVE_DTYPES = ("float32", "float16", "bfloat16")
 
 
 def file_sha256(path: str | os.PathLike) -> str:
@@ -47,7 +46,7 @@ def file_sha256(path: str | os.PathLike) -> str:
 class Codec:
     """An encoder + decoder + tokenizer, seen through the codec contract of DESIGN.md."""
 
-    model: ChunkMLP
+    model: Any  # core.model.ChunkMLP (imported with torch, on first load)
     tokenizer: Tokenizer
     card: dict[str, Any] = field(default_factory=dict)
     sha256: str = ""
@@ -89,11 +88,11 @@ class Codec:
     def num_parameters(self) -> int:
         return sum(p.numel() for p in self.model.parameters())
 
-    @torch.inference_mode()
+    @inference_mode
     def encode(self, ids: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor | None]:
         return self.model.encode(ids)
 
-    @torch.inference_mode()
+    @inference_mode
     def decode(self, z: torch.Tensor) -> torch.Tensor:
         return self.model.decode(z)
 
@@ -113,7 +112,9 @@ def save_codec(codec: Codec, path: str | os.PathLike, dtype: str = "float32") ->
     if dtype not in SAVE_DTYPES:
         raise ValueError(f"dtype must be one of {sorted(SAVE_DTYPES)}, not {dtype!r}")
     path = Path(path)
-    tensors = {k: v.detach().to(SAVE_DTYPES[dtype]).contiguous() for k, v in codec.model.state_dict().items()}
+    from safetensors.torch import save_file
+
+    tensors = {k: v.detach().to(getattr(torch, dtype)).contiguous() for k, v in codec.model.state_dict().items()}
     metadata = {
         KEY_FORMAT: str(FORMAT_VERSION),
         KEY_CONFIG: json.dumps(codec.config.to_dict(), sort_keys=True),
@@ -164,8 +165,22 @@ def _read_header(path: Path) -> dict:
     return header
 
 
-def load_codec(path: str | os.PathLike) -> Codec:
-    """Read and validate one checkpoint file; raise CheckpointError naming any problem."""
+@dataclass
+class CheckpointInfo:
+    """What a checkpoint's header says, validated, read without torch or the weights."""
+
+    path: Path
+    config: ChunkMLPConfig
+    card: dict[str, Any]
+    header: dict[str, Any]
+
+    @property
+    def metadata(self) -> dict[str, str]:
+        return self.header.get("__metadata__") or {}
+
+
+def read_checkpoint_info(path: str | os.PathLike) -> CheckpointInfo:
+    """Read and validate a checkpoint's framing, format, config and card (fast: the header only)."""
     path = Path(path)
     name = path.name
     if not path.is_file():
@@ -206,14 +221,6 @@ def load_codec(path: str | os.PathLike) -> Codec:
         raise CheckpointError(f"{name} has a config without the size(s) {exc.args[0]}.") from None
     except (TypeError, ValueError) as exc:
         raise CheckpointError(f"{name} has an invalid config: {exc}.") from None
-    try:
-        tokenizer = Tokenizer.from_str(metadata[KEY_TOKENIZER])
-    except Exception:
-        raise CheckpointError(f"{name} has a {KEY_TOKENIZER} entry the tokenizers library cannot read.") from None
-    if tokenizer.get_vocab_size() != config.vocab_size:
-        raise CheckpointError(
-            f"{name} has a tokenizer of {tokenizer.get_vocab_size()} tokens but a model vocabulary of {config.vocab_size}."
-        )
     card: dict[str, Any] = {}
     if KEY_CARD in metadata:
         try:
@@ -222,16 +229,34 @@ def load_codec(path: str | os.PathLike) -> Codec:
                 raise ValueError
         except ValueError:
             raise CheckpointError(f"{name} has a {KEY_CARD} entry that is not a JSON object.") from None
+    return CheckpointInfo(path=path, config=config, card=card, header=header)
+
+
+def load_codec(path: str | os.PathLike) -> Codec:
+    """Read and validate one checkpoint file; raise CheckpointError naming any problem."""
+    info = read_checkpoint_info(path)
+    path, name, config, card, header, metadata = info.path, info.path.name, info.config, info.card, info.header, info.metadata
+    arch = config.arch
+    try:
+        tokenizer = Tokenizer.from_str(metadata[KEY_TOKENIZER])
+    except Exception:
+        raise CheckpointError(f"{name} has a {KEY_TOKENIZER} entry the tokenizers library cannot read.") from None
+    if tokenizer.get_vocab_size() != config.vocab_size:
+        raise CheckpointError(
+            f"{name} has a tokenizer of {tokenizer.get_vocab_size()} tokens but a model vocabulary of {config.vocab_size}."
+        )
+
+    from core.model import build_model
 
     model = build_model(config)
     expected = model.state_dict()
-    for key, info in header.items():
+    for key, described in header.items():
         if key == "__metadata__":
             continue
         if key not in expected:
             raise CheckpointError(f"{name} holds a tensor {key!r} that the {arch} architecture does not have.")
-        if info.get("dtype") not in ALLOWED_DTYPES:
-            raise CheckpointError(f"{name} stores tensor {key!r} as {info.get('dtype')}; only float32, float16 and bfloat16 are read.")
+        if described.get("dtype") not in ALLOWED_DTYPES:
+            raise CheckpointError(f"{name} stores tensor {key!r} as {described.get('dtype')}; only float32, float16 and bfloat16 are read.")
     state = {}
     try:
         with safe_open(str(path), framework="pt") as handle:

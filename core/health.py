@@ -6,8 +6,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import torch
 
+from core.deferred import torch
 from core.latent import Encoded, encode_chunks
 from core.text import Chunks
 

@@ -11,8 +11,8 @@ from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
-import torch
 
+from core.deferred import torch
 from core.errors import SettingsError, SweepCancelled
 
 NOISE_MODELS = ("isotropic", "posterior", "data-scale")

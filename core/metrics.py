@@ -11,7 +11,8 @@ from collections import Counter
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
-import torch
+
+from core.deferred import inference_mode, torch
 
 ECE_BINS = 15
 EXP_FLOOR = -80.0
@@ -61,7 +62,7 @@ class TokenScores:
     correct: torch.Tensor  # [B, K] bool
 
 
-@torch.inference_mode()
+@inference_mode
 def log_partition(logits: torch.Tensor, top: torch.Tensor) -> torch.Tensor:
     """log Σ exp(logits) over the last axis, given its max `top`; overwrites `logits`.
 
@@ -70,7 +71,7 @@ def log_partition(logits: torch.Tensor, top: torch.Tensor) -> torch.Tensor:
     return top + logits.sub_(top.unsqueeze(-1)).clamp_(min=EXP_FLOOR).exp_().sum(-1).log()
 
 
-@torch.inference_mode()
+@inference_mode
 def score_logits(logits: torch.Tensor, targets: torch.Tensor, inplace: bool = False):
     """argmax, top-1 confidence, NLL of the truth and Brier score per token.
 

@@ -11,36 +11,10 @@ live in `core.train`; this module is the deterministic function the tool inspect
 
 from __future__ import annotations
 
-from dataclasses import MISSING, asdict, dataclass, fields
-
 import torch
 from torch import nn
 
-ARCHITECTURES = ("chunk-mlp",)
-
-
-@dataclass(frozen=True)
-class ChunkMLPConfig:
-    chunk_size: int
-    vocab_size: int
-    latent_dim: int
-    embed_dim: int = 128
-    width: int = 512
-    depth: int = 2
-    variational: bool = False
-    pad_id: int = 0
-    arch: str = "chunk-mlp"
-
-    def to_dict(self) -> dict:
-        return asdict(self)
-
-    @classmethod
-    def from_dict(cls, data: dict) -> "ChunkMLPConfig":
-        known = {f.name for f in fields(cls)}
-        missing = [f.name for f in fields(cls) if f.name not in data and f.default is MISSING]
-        if missing:
-            raise KeyError(", ".join(missing))
-        return cls(**{k: v for k, v in data.items() if k in known})
+from core.arch import ARCHITECTURES, ChunkMLPConfig
 
 
 class ResidualBlock(nn.Module):

@@ -20,9 +20,9 @@ from pathlib import Path
 from typing import Any, Sequence
 
 import numpy as np
-import torch
 
 import core
+from core.deferred import torch
 from core.errors import SettingsError, SweepCancelled
 from core.files import staged_folder
 from core.latent import NOISE_BLOCK, NOISE_MODELS, Encoded, Progress, ShouldStop, check_noise, draw_eps, encode_chunks, noise_scale

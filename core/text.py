@@ -8,8 +8,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-import torch
 
+from core.deferred import torch
 from core.errors import TextError
 from core.tokenizer import encode_with_spans
 

@@ -33,7 +33,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from core.checkpoint import SAVE_DTYPES, Codec, save_codec
+from core.checkpoint import Codec, save_codec
 from core.corpus import Corpus, build_corpus
 from core.model import ChunkMLP, ChunkMLPConfig, build_model
 from core.text import Chunks, chunk_text, demo_text, text_sha256
@@ -383,7 +383,7 @@ def train(
     model.eval()
     with torch.no_grad():
         # measure exactly the weights that will be stored
-        dtype = SAVE_DTYPES[recipe.save_dtype]
+        dtype = getattr(torch, recipe.save_dtype)
         for tensor in model.state_dict().values():
             tensor.copy_(tensor.to(dtype).to(tensor.dtype))
     codec = Codec(model=model, tokenizer=tokenizer)

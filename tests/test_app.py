@@ -72,6 +72,44 @@ def test_opens_with_the_samples_and_the_demo_text(qtbot, window):
     assert entry.codec.sha256[:16] in details and str(entry.codec.latent_dim) in details
 
 
+def test_the_samples_are_listed_before_any_weights_load(qtbot, tmp_path):
+    # the window lists each sample from its header alone; the queued loading starts after the
+    # first paint, or (a window never shown) at the first turn of the event loop
+    if not sample_paths():
+        pytest.skip("the sample checkpoints are not there")
+    win = MainWindow(make_settings(tmp_path / "s.ini"))
+    try:
+        entries = list(win.workbench.entries.values())
+        assert sorted(e.name for e in entries) == sorted(p.stem for p in sample_paths())
+        assert all(e.codec is None and e.info is not None for e in entries)
+        rows = [win.models.list.itemWidget(win.models.list.item(i)) for i in range(win.models.list.count())]
+        metas = {row.name.text(): row.meta.text() for row in rows}
+        for entry in entries:
+            c = entry.info.config
+            assert f"K {c.chunk_size} · D {c.latent_dim}" in metas[entry.name]
+            assert "loading weights" in metas[entry.name]
+        assert str(entries[0].info.config.latent_dim) in win.models.details.toPlainText()
+        qtbot.waitUntil(lambda: all(e.ready for e in win.workbench.entries.values()), timeout=WAIT)
+        assert "loading weights" not in win.models.details.toPlainText()
+    finally:
+        win.runner.shutdown()
+        win.deleteLater()
+
+
+def test_held_work_starts_on_release(qtbot):
+    from app.workers import Runner, Task
+
+    runner = Runner()
+    runner.hold()
+    task = runner.start(Task("held", lambda _task: 42))
+    qtbot.wait(100)
+    assert not task.done.is_set()
+    with qtbot.waitSignal(task.finished, timeout=WAIT) as blocker:
+        runner.release()
+    assert blocker.args == [42]
+    assert runner.shutdown()
+
+
 def test_slider_move_updates_the_decoded_view(qtbot, window):
     wait_ready(qtbot, window)
     window.show_view("live")

@@ -1,13 +1,16 @@
 """Checkpoint round trips and every bad file the loader must name."""
 
 import json
+import os
 import struct
+import subprocess
+import sys
 
 import pytest
 import torch
 from safetensors.torch import save_file
 
-from core.checkpoint import KEY_CARD, KEY_CONFIG, KEY_FORMAT, KEY_TOKENIZER, load_codec, save_codec
+from core.checkpoint import KEY_CARD, KEY_CONFIG, KEY_FORMAT, KEY_TOKENIZER, Codec, load_codec, save_codec
 from core.errors import CheckpointError
 
 
@@ -155,3 +158,29 @@ def test_integer_tensor_is_refused(tmp_path, small_codec):
 
 def test_missing_file(tmp_path):
     _expect(tmp_path / "nowhere.safetensors", "does not exist")
+
+
+def test_header_info_is_read_without_the_weights(tmp_path, small_codec):
+    from core.checkpoint import read_checkpoint_info
+
+    path = tmp_path / "h.safetensors"
+    save_codec(Codec(small_codec.model, small_codec.tokenizer, card={"note": "header"}), path)
+    info = read_checkpoint_info(path)
+    assert info.config == load_codec(path).config
+    assert info.card == {"note": "header"}
+    # the same sentences as load_codec for a bad header
+    tensors, metadata = _tensors_and_metadata(small_codec)
+    metadata[KEY_FORMAT] = "9"
+    bad = _write(tmp_path / "newer.safetensors", tensors, metadata)
+    with pytest.raises(CheckpointError) as header_error:
+        read_checkpoint_info(bad)
+    assert str(header_error.value) == _expect(bad, "format 9")
+
+
+def test_core_and_the_window_import_without_torch():
+    # torch (about 2.5 s to import) loads in the first background task, after the window is up
+    code = ("import sys, core, core.checkpoint, core.sweep, core.views, app.window, app.main; "
+            "print('torch' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                         env={**os.environ, "QT_QPA_PLATFORM": "offscreen"})
+    assert out.stdout.strip() == "False", out.stderr
