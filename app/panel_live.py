@@ -27,23 +27,30 @@ from core.latent import NOISE_MODELS
 from core.live import LivePerturbation
 from core.text import Chunks
 from core.tokenizer import token_display
-from core.views import LiveWindow, block_range, decoded_layout, merge_windows, perturb_window, remaining_ranges
+from core.views import LiveWindow, decoded_layout, merge_windows, perturb_window, remaining_ranges
 
 RELATIVE_MAX = 2.0
+TOP_K = 5  # alternatives shown when hovering a token (core.views.perturb_window's default)
 MAX_MARKED = 4000  # beyond this many wrong tokens the panes stop marking each one
 
 
 def _live(task: Task, codec, chunks: Chunks, encoded, sigma: float, noise: str, seed: int, draw: int,
           first: int, last: int):
-    """Decode the chunks on screen, report them, then decode the rest and return the whole text."""
-    start, stop = block_range(first, last + 1, encoded.num_chunks)
-    window = perturb_window(codec, chunks, encoded, sigma, noise, seed, draw, start, stop, should_stop=task.should_stop)
+    """Decode the chunks on screen (argmax only: the quickest answer), report them, then decode
+    the whole text with each token's top alternatives and return it."""
+    start, stop = max(0, first), min(max(last, first + 1), encoded.num_chunks)
+    quick = perturb_window(codec, chunks, encoded, sigma, noise, seed, draw, start, stop, top_k=0,
+                           should_stop=task.should_stop)
+    if quick is None:
+        return None
+    task.partial.emit(quick)
+    window = perturb_window(codec, chunks, encoded, sigma, noise, seed, draw, start, stop, top_k=TOP_K,
+                            should_stop=task.should_stop)
     if window is None:
         return None
-    task.partial.emit(window)
     windows = [window]
     for a, b in remaining_ranges(encoded.num_chunks, start, stop):
-        w = perturb_window(codec, chunks, encoded, sigma, noise, seed, draw, a, b, should_stop=task.should_stop)
+        w = perturb_window(codec, chunks, encoded, sigma, noise, seed, draw, a, b, top_k=TOP_K, should_stop=task.should_stop)
         if w is None:
             return None
         windows.append(w)
@@ -73,7 +80,7 @@ class LivePanel(QWidget):
         self._build()
         self.debounce = QTimer(self)
         self.debounce.setSingleShot(True)
-        self.debounce.setInterval(12)
+        self.debounce.setInterval(0)  # coalesces the moves of one event-loop turn; a running request coalesces the rest
         self.debounce.timeout.connect(self._launch)
         workbench.current_changed.connect(self._entry_switched)
         workbench.entry_changed.connect(self._entry_updated)
@@ -345,14 +352,15 @@ class LivePanel(QWidget):
             truth = entry.chunks.token_ids
             base = {
                 "predicted": truth.copy(), "correct": np.ones(n, dtype=bool),
-                "top_ids": np.repeat(truth[:, None], window.top_ids.shape[1], 1),
-                "top_probs": np.zeros((n, window.top_ids.shape[1]), dtype=np.float32),
+                "top_ids": np.repeat(truth[:, None], TOP_K, 1), "top_probs": np.zeros((n, TOP_K), dtype=np.float32),
             }
         a, b = window.token_start, window.token_stop
         base["predicted"][a:b] = window.predicted
         base["correct"][a:b] = window.correct
-        base["top_ids"][a:b] = window.top_ids
-        base["top_probs"][a:b] = window.top_probs
+        width = window.top_ids.shape[1]  # 0 for the quick on-screen pass: no alternatives until the whole text is in
+        base["top_ids"][a:b, :width] = window.top_ids
+        base["top_probs"][a:b] = 0.0
+        base["top_probs"][a:b, :width] = window.top_probs
         self._show(base["predicted"], base["correct"], base["top_ids"], base["top_probs"], gen, whole=False,
                    token_range=(a, b))
 

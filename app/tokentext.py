@@ -16,10 +16,10 @@ from core.views import token_at
 
 def _utf16_offsets(text: str) -> np.ndarray | None:
     """Python index -> Qt (UTF-16) position, or None when the two agree (no astral characters)."""
-    if not any(ord(ch) > 0xFFFF for ch in text):
+    astral = np.frombuffer(text.encode("utf-32-le", "surrogatepass"), dtype="<u4") > 0xFFFF
+    if not astral.any():
         return None
-    extra = np.fromiter((1 if ord(ch) > 0xFFFF else 0 for ch in text), dtype=np.int64, count=len(text))
-    return np.concatenate([[0], np.cumsum(extra)]) + np.arange(len(text) + 1)
+    return np.concatenate([[0], np.cumsum(astral, dtype=np.int64)]) + np.arange(len(text) + 1)
 
 
 class TokenText(QPlainTextEdit):
@@ -77,9 +77,12 @@ class TokenText(QPlainTextEdit):
         tokens = np.asarray(tokens, dtype=np.int64)
         runs: list[tuple[int, int]] = []
         if len(tokens):
-            breaks = np.flatnonzero(np.diff(tokens) != 1) + 1
-            for group in np.split(tokens, breaks):
-                runs.append((self.doc_pos(int(self.spans[group[0], 0])), self.doc_pos(int(self.spans[group[-1], 1]))))
+            firsts = np.concatenate([[0], np.flatnonzero(np.diff(tokens) != 1) + 1])
+            lasts = np.concatenate([firsts[1:] - 1, [len(tokens) - 1]])
+            starts, ends = self.spans[tokens[firsts], 0], self.spans[tokens[lasts], 1]
+            if self._map is not None:
+                starts, ends = self._map[starts], self._map[ends]
+            runs = list(zip(starts.tolist(), ends.tolist()))
         cursor = QTextCursor(self.document())
         cursor.beginEditBlock()
         plain = QTextCharFormat()

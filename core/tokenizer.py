@@ -8,6 +8,7 @@ empty span).
 
 from __future__ import annotations
 
+import weakref
 from functools import lru_cache
 from typing import Iterable
 
@@ -58,6 +59,17 @@ def token_display(tokenizer: Tokenizer, token_id: int) -> str:
         return raw.decode("utf-8")
     except UnicodeDecodeError:
         return raw.decode("utf-8", errors="backslashreplace")
+
+
+_DISPLAY_TABLES: "weakref.WeakKeyDictionary[Tokenizer, list[str]]" = weakref.WeakKeyDictionary()
+
+
+def display_table(tokenizer: Tokenizer) -> list[str]:
+    """token_display of every id, made once per tokenizer (views look up thousands per update)."""
+    table = _DISPLAY_TABLES.get(tokenizer)
+    if table is None:
+        table = _DISPLAY_TABLES[tokenizer] = [token_display(tokenizer, i) for i in range(tokenizer.get_vocab_size())]
+    return table
 
 
 def decode_ids(tokenizer: Tokenizer, ids: Iterable[int]) -> str:

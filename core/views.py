@@ -12,14 +12,14 @@ from dataclasses import dataclass
 from typing import Callable, Sequence
 
 import numpy as np
-import torch
 
+from core.deferred import inference_mode, torch
 from core.errors import SettingsError
 from core.latent import NOISE_BLOCK, Encoded, check_noise, draw_eps, noise_scale
 from core.live import LivePerturbation
 from core.metrics import log_partition
 from core.text import Chunks
-from core.tokenizer import token_display
+from core.tokenizer import display_table, token_display
 
 
 @dataclass
@@ -41,14 +41,7 @@ class LiveWindow:
     exact_chunks: int
 
 
-def block_range(chunk_start: int, chunk_stop: int, num_chunks: int) -> tuple[int, int]:
-    """The smallest range of whole noise blocks covering [chunk_start, chunk_stop)."""
-    start = max(0, min(chunk_start, num_chunks)) // NOISE_BLOCK * NOISE_BLOCK
-    stop = min(num_chunks, -(-max(chunk_stop, start + 1) // NOISE_BLOCK) * NOISE_BLOCK)
-    return start, stop
-
-
-@torch.inference_mode()
+@inference_mode
 def perturb_window(
     codec,
     chunks: Chunks,
@@ -62,12 +55,15 @@ def perturb_window(
     top_k: int = 5,
     should_stop: Callable[[], bool] | None = None,
 ) -> LiveWindow | None:
-    """Perturb and decode chunks [chunk_start, chunk_stop) (block-aligned start); None if stopped."""
+    """Perturb and decode chunks [chunk_start, chunk_stop); None if stopped.
+
+    Any range gives the same result as the same chunks inside a larger range (ε comes
+    from draw_eps). With top_k=0 only the argmax is taken (the quickest answer for the
+    screen); top_ids and top_probs are then empty [n, 0] arrays."""
     check_noise(noise, codec)
-    if chunk_start % NOISE_BLOCK:
-        raise ValueError("a live window starts on a noise block boundary")
     n, k, dim = encoded.num_chunks, codec.chunk_size, codec.latent_dim
-    chunk_stop = min(chunk_stop, n)
+    chunk_start, chunk_stop = max(0, min(chunk_start, n)), max(0, min(chunk_stop, n))
+    chunk_stop = max(chunk_stop, chunk_start)
     t_total = chunks.num_tokens
     t0, t1 = chunk_start * k, min(chunk_stop * k, t_total)
     predicted = np.empty(t1 - t0, dtype=np.int64)
@@ -85,16 +81,20 @@ def perturb_window(
         else:
             z = mean
         logits = codec.decode(z)
-        # top-k on logits and probabilities from the log-partition: same ranking as softmax, fewer passes
-        values, ids = logits.topk(top_k, dim=-1)
-        probs = torch.exp(values - log_partition(logits, values[..., 0]).unsqueeze(-1))
         a, b = start * k - t0, min(stop * k, t_total) - t0
         m = b - a
-        predicted[a:b] = ids[..., 0].reshape(-1)[:m].numpy()
-        top_ids[a:b] = ids.reshape(-1, top_k)[:m].numpy()
-        top_probs[a:b] = probs.reshape(-1, top_k)[:m].numpy()
+        if top_k > 0:
+            # top-k on logits and probabilities from the log-partition: same ranking as softmax, fewer passes
+            values, ids = logits.topk(top_k, dim=-1)
+            probs = torch.exp(values - log_partition(logits, values[..., 0]).unsqueeze(-1))
+            best = ids[..., 0]
+            top_ids[a:b] = ids.reshape(-1, top_k)[:m].numpy()
+            top_probs[a:b] = probs.reshape(-1, top_k)[:m].numpy()
+        else:
+            best = logits.argmax(-1)
+        predicted[a:b] = best.reshape(-1)[:m].numpy()
         truth, mask = chunks.ids(start, stop), chunks.mask(start, stop)
-        exact += int(((ids[..., 0] == truth) | ~mask).all(1).sum())
+        exact += int(((best == truth) | ~mask).all(1).sum())
     correct = predicted == chunks.token_ids[t0:t1]
     return LiveWindow(
         sigma=float(sigma), noise=noise, seed=seed, draw=draw, chunk_start=chunk_start, chunk_stop=chunk_stop,
@@ -128,7 +128,7 @@ def merge_windows(chunks: Chunks, windows: Sequence[LiveWindow]) -> LivePerturba
 
 
 def remaining_ranges(num_chunks: int, done_start: int, done_stop: int) -> list[tuple[int, int]]:
-    """Block-aligned ranges of the text outside [done_start, done_stop), nearest first."""
+    """The ranges of the text outside [done_start, done_stop), the part below it first."""
     out = []
     if done_stop < num_chunks:
         out.append((done_stop, num_chunks))
@@ -146,22 +146,30 @@ class DecodedLayout:
 
 
 def decoded_layout(codec, chunks: Chunks, predicted: np.ndarray, correct: np.ndarray, token_start: int = 0) -> DecodedLayout:
-    """Text of tokens token_start..token_start+len(predicted) as decoded; right tokens keep their exact characters."""
-    text, spans = chunks.text, chunks.spans
+    """Text of tokens token_start..token_start+len(predicted) as decoded; right tokens keep their exact characters.
+
+    The token spans tile the text, so each run of right tokens is one slice of it; only
+    the wrong tokens are visited one by one."""
+    text = chunks.text
+    n = len(predicted)
+    spans = chunks.spans[token_start : token_start + n]
+    lengths = (spans[:, 1] - spans[:, 0]).astype(np.int64)
     pieces: list[str] = []
-    cache: dict[int, str] = {}
-    for j, (tid, ok) in enumerate(zip(predicted.tolist(), correct.tolist())):
-        t = token_start + j
-        if ok:
-            pieces.append(text[spans[t, 0] : spans[t, 1]])
-        else:
-            piece = cache.get(tid)
-            if piece is None:
-                piece = cache[tid] = token_display(codec.tokenizer, tid)
-            pieces.append(piece)
-    lengths = np.fromiter((len(p) for p in pieces), dtype=np.int64, count=len(pieces))
+    table = display_table(codec.tokenizer)
+    copied = 0  # tokens before this one are in `pieces`
+    wrong = np.flatnonzero(~np.asarray(correct, dtype=bool))
+    starts, ends = spans[:, 0].tolist(), spans[:, 1].tolist()
+    for j, tid in zip(wrong.tolist(), np.asarray(predicted)[wrong].tolist()):
+        if j > copied:
+            pieces.append(text[starts[copied] : ends[j - 1]])
+        piece = table[tid]
+        pieces.append(piece)
+        lengths[j] = len(piece)
+        copied = j + 1
+    if copied < n:
+        pieces.append(text[starts[copied] : ends[n - 1]])
     ends = np.cumsum(lengths)
-    out_spans = np.stack([ends - lengths, ends], axis=1) if len(pieces) else np.zeros((0, 2), dtype=np.int64)
+    out_spans = np.stack([ends - lengths, ends], axis=1) if n else np.zeros((0, 2), dtype=np.int64)
     return DecodedLayout("".join(pieces), out_spans)
 
 

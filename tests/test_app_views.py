@@ -11,9 +11,9 @@ from core.live import perturb_once
 from core.model import ChunkMLPConfig, build_model
 from core.text import chunk_text, demo_text
 from core.tokenizer import train_byte_bpe
+from core.tokenizer import token_display
 from core.views import (
-    block_range, critical_sigma_levels, decoded_layout, merge_windows, perturb_window, remaining_ranges, sigma_grid,
-    token_at,
+    critical_sigma_levels, decoded_layout, merge_windows, perturb_window, remaining_ranges, sigma_grid, token_at,
 )
 
 
@@ -28,13 +28,13 @@ def setup():
     return codec, chunks, encode_chunks(codec, chunks)
 
 
-def test_windows_merge_into_the_engines_whole_text_perturbation(setup):
-    """The reference is core.live.perturb_once over the whole text with the same noise."""
+@pytest.mark.parametrize("start, stop", [(300, 310), (250, 530), (0, 256), (17, 18)])
+def test_windows_merge_into_the_engines_whole_text_perturbation(setup, start, stop):
+    """The reference is core.live.perturb_once over the whole text with the same noise; the
+    on-screen window may start and end anywhere, also across noise blocks of 256 chunks."""
     codec, chunks, encoded = setup
     n = encoded.num_chunks
-    assert n > 256, "the text must span more than one noise block for this check"
-    start, stop = block_range(300, 310, n)
-    assert (start, stop) == (256, min(512, n))
+    assert n > 530, "the text must span more than two noise blocks for this check"
     windows = [perturb_window(codec, chunks, encoded, 0.8, "data-scale", 3, 1, start, stop)]
     for a, b in remaining_ranges(n, start, stop):
         windows.append(perturb_window(codec, chunks, encoded, 0.8, "data-scale", 3, 1, a, b))
@@ -45,6 +45,18 @@ def test_windows_merge_into_the_engines_whole_text_perturbation(setup):
     np.testing.assert_allclose(merged.top_probs, reference.top_probs, atol=1e-5)
     assert merged.token_accuracy == pytest.approx(reference.token_accuracy)
     assert merged.chunk_exact_rate == pytest.approx(reference.chunk_exact_rate)
+
+
+def test_the_quick_window_decodes_like_the_full_one(setup):
+    # top_k=0 is the argmax-only pass the live view shows first; it must agree with the full pass
+    codec, chunks, encoded = setup
+    quick = perturb_window(codec, chunks, encoded, 0.6, "isotropic", 1, 0, 40, 300, top_k=0)
+    full = perturb_window(codec, chunks, encoded, 0.6, "isotropic", 1, 0, 40, 300, top_k=5)
+    assert quick.top_ids.shape == (quick.token_stop - quick.token_start, 0)
+    np.testing.assert_array_equal(quick.predicted, full.predicted)
+    np.testing.assert_array_equal(quick.correct, full.correct)
+    assert quick.exact_chunks == full.exact_chunks
+    assert not quick.correct.all(), "sigma 0.6 should break some tokens of an untrained model"
 
 
 def test_a_stopped_window_returns_nothing(setup):
@@ -64,6 +76,28 @@ def test_decoded_layout_keeps_right_tokens_and_shows_wrong_ones(setup):
     a, b = layout.spans[5]
     assert token_at(layout.spans, int(a)) == 5 if b > a else True
     assert layout.text.startswith(chunks.text[: chunks.spans[5, 0]])
+
+
+def test_decoded_layout_matches_its_definition_token_by_token(setup):
+    # the definition: right tokens keep their characters, wrong ones show the decoded token
+    codec, chunks, _ = setup
+    rng = np.random.default_rng(4)
+    predicted = chunks.token_ids.copy()
+    correct = rng.random(len(predicted)) > 0.3
+    correct[:3] = False  # wrong tokens at the very start and end too
+    correct[-2:] = False
+    predicted[~correct] = rng.integers(2, codec.vocab_size, int((~correct).sum()))
+    correct = predicted == chunks.token_ids
+    for token_start, n in ((0, len(predicted)), (101, 333)):
+        p, c = predicted[token_start : token_start + n], correct[token_start : token_start + n]
+        pieces = [
+            chunks.text[chunks.spans[token_start + j, 0] : chunks.spans[token_start + j, 1]] if c[j]
+            else token_display(codec.tokenizer, int(p[j]))
+            for j in range(n)
+        ]
+        layout = decoded_layout(codec, chunks, p, c, token_start=token_start)
+        assert layout.text == "".join(pieces)
+        assert [layout.text[a:b] for a, b in layout.spans.tolist()] == pieces
 
 
 def test_sigma_grid_and_levels():
