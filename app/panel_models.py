@@ -80,6 +80,8 @@ class DetailsView(QScrollArea):
                            "border-radius: 6px; }")
         self._rows: list[tuple[str, str]] = []
         self._shown: str | None = None  # what is on screen, to skip rebuilding the same details
+        self._shape: tuple = ()  # sections' titles, keys and kinds of value: same shape, update in place
+        self._labels: list[QLabel] = []
         self._values: dict[str, QLabel] = {}
         self._show(QWidget())
 
@@ -94,8 +96,8 @@ class DetailsView(QScrollArea):
     def set_message(self, text: str) -> None:
         if self._shown == text:
             return
-        self._shown = text
-        self._rows, self._values = [("", text)], {}
+        self._shown, self._shape = text, ()
+        self._rows, self._values, self._labels = [("", text)], {}, []
         inner = QWidget()
         layout = QVBoxLayout(inner)
         layout.setContentsMargins(10, 10, 10, 10)
@@ -109,12 +111,25 @@ class DetailsView(QScrollArea):
     def set_sections(self, sections: list[tuple[str, list[tuple[str, object]], str, bool]]) -> None:
         """(title, rows, note when rows is empty, stacked) per section; the first title may be
         empty. Stacked rows put the key above its value (card keys are long dotted names).
-        The same sections again change nothing (opening several files asks several times)."""
+        The same sections again change nothing (opening several files asks several times),
+        and the same rows with new values update the labels in place (a rebuild of a long
+        card takes a noticeable fraction of a second)."""
         key = repr(sections)
         if self._shown == key:
             return
         self._shown = key
-        self._rows, self._values = [], {}
+        shape = tuple((title, tuple((str(k), self._is_prose(str(v))) for k, v in rows), note, stacked)
+                      for title, rows, note, stacked in sections)
+        if shape == self._shape:
+            self._rows = [(str(k), str(v)) for _, rows, _, _ in sections for k, v in rows]
+            for label, (_, value) in zip(self._labels, self._rows):
+                if isinstance(label, ElidedLabel):
+                    label.set_full_text(value)
+                else:
+                    label.setText(value)
+            return
+        self._shape = shape
+        self._rows, self._values, self._labels = [], {}, []
         inner = QWidget()
         layout = QVBoxLayout(inner)
         layout.setContentsMargins(10, 8, 10, 10)
@@ -142,7 +157,7 @@ class DetailsView(QScrollArea):
                 key_label.setObjectName("caption")
                 key_label.setSizePolicy(QSizePolicy.Policy.Preferred, QSizePolicy.Policy.Fixed)
                 key_label.setMaximumWidth(self.KEY_WIDTH)
-                if " " in value.strip() and len(value) > 16:  # prose: wrap at spaces
+                if self._is_prose(value):  # prose: wrap at spaces
                     value_label = QLabel(value)
                     value_label.setTextFormat(Qt.TextFormat.PlainText)
                     value_label.setWordWrap(True)
@@ -161,9 +176,14 @@ class DetailsView(QScrollArea):
                     grid.addWidget(key_label, i, 0, Qt.AlignmentFlag.AlignTop)
                     grid.addWidget(value_label, i, 1, Qt.AlignmentFlag.AlignTop)
                 self._values.setdefault(key, value_label)
+                self._labels.append(value_label)
             layout.addLayout(grid)
         layout.addStretch(1)
         self._show(inner)
+
+    @staticmethod
+    def _is_prose(value: str) -> bool:
+        return " " in value.strip() and len(value) > 16
 
     def value_label(self, key: str) -> QLabel | None:
         return self._values.get(key)
@@ -312,8 +332,7 @@ class ModelsPanel(QWidget):
             ("parameters", f"{codec.num_parameters:,}" if codec is not None else "loading weights…"),
             ("sha256", codec.sha256 if codec is not None else "loading weights…"),
         ]
-        if entry.encoded is not None:
-            rows.append(("latent RMS", f"{entry.encoded.latent_rms:.4g}"))
+        rows.append(("latent RMS", f"{entry.encoded.latent_rms:.4g}" if entry.encoded is not None else "encoding…"))
         card_rows = self._flatten(card) if card else []
         self.details.set_sections([("", rows, "", False), ("CARD", card_rows, "This checkpoint carries no card.", True)])
 
