@@ -1,6 +1,6 @@
-"""Small control helpers shared by the panels: captions, arrowless spin boxes, the figure
-boxes of a summary row, and the sigma-grid and noise settings of the sweep, compare and
-training-run panels."""
+"""Small control helpers shared by the panels: the page layout and framed cards, captions,
+arrowless spin boxes, the figure boxes of a summary row, and the sigma-grid and noise
+settings of the sweep, compare and training-run panels."""
 
 from __future__ import annotations
 
@@ -8,13 +8,33 @@ from typing import Sequence
 
 from PySide6.QtCore import Qt
 from PySide6.QtWidgets import (
-    QAbstractSpinBox, QCheckBox, QComboBox, QDoubleSpinBox, QGridLayout, QHBoxLayout, QLabel, QSpinBox,
-    QVBoxLayout, QWidget,
+    QAbstractSpinBox, QBoxLayout, QCheckBox, QComboBox, QDoubleSpinBox, QFrame, QGridLayout, QHBoxLayout, QLabel,
+    QLayout, QSpinBox, QVBoxLayout, QWidget,
 )
 
 from app.style import PALETTE
 from core.latent import NOISE_MODELS
 from core.views import sigma_grid
+
+
+def page_layout(page: QWidget, spacing: int) -> QVBoxLayout:
+    """A view's outer layout, with the page margins every view shares."""
+    outer = QVBoxLayout(page)
+    outer.setContentsMargins(14, 12, 14, 12)
+    outer.setSpacing(spacing)
+    return outer
+
+
+def card(layout: type[QLayout] = QVBoxLayout, margins: tuple[int, int] = (14, 8), spacing: int | None = None):
+    """A framed group (the "card" of app.style) and its layout; margins are (side, top and bottom)."""
+    frame = QFrame()
+    frame.setObjectName("card")
+    inner = layout(frame)
+    side, vertical = margins
+    inner.setContentsMargins(side, vertical, side, vertical)
+    if spacing is not None and isinstance(inner, QBoxLayout):
+        inner.setSpacing(spacing)
+    return frame, inner
 
 
 def caption(text: str, name: str = "caption") -> QLabel:

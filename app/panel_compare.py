@@ -17,7 +17,7 @@ from PySide6.QtWidgets import (
     QListWidgetItem, QProgressBar, QPushButton, QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
-from app.controls import GridControls, caption
+from app.controls import GridControls, caption, card, page_layout
 from app.export import add_export_menu
 from app.plotaxes import use_sigma_axis
 from app.style import PALETTE, faded, fmt_percent, legend, pen, plot_widget
@@ -178,15 +178,9 @@ class ComparePanel(QWidget):
     # ---- layout --------------------------------------------------------------------------
 
     def _build(self) -> None:
-        outer = QVBoxLayout(self)
-        outer.setContentsMargins(14, 12, 14, 12)
-        outer.setSpacing(8)
+        outer = page_layout(self, 8)
 
-        controls = QFrame()
-        controls.setObjectName("card")
-        cv = QVBoxLayout(controls)
-        cv.setContentsMargins(14, 8, 14, 8)
-        cv.setSpacing(6)
+        controls, cv = card(spacing=6)
         pick = QHBoxLayout()
         pick.setSpacing(8)
         pick.addWidget(caption("compare"))
@@ -295,11 +289,7 @@ class ComparePanel(QWidget):
         table_widget.setMinimumWidth(330)
         tl.addWidget(table_widget, 4)
 
-        bottom = QFrame()
-        bottom.setObjectName("card")
-        bl = QVBoxLayout(bottom)
-        bl.setContentsMargins(12, 8, 12, 8)
-        bl.setSpacing(6)
+        bottom, bl = card(margins=(12, 8), spacing=6)
         head = QHBoxLayout()
         head.setSpacing(8)
         head.addWidget(caption("Where they differ", "title"))

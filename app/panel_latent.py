@@ -6,9 +6,9 @@ from __future__ import annotations
 import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
-from PySide6.QtWidgets import QFrame, QGridLayout, QHBoxLayout, QLabel, QVBoxLayout, QWidget
+from PySide6.QtWidgets import QGridLayout, QHBoxLayout, QLabel, QWidget
 
-from app.controls import figure_box
+from app.controls import card, figure_box, page_layout
 from app.export import add_export_menu
 from app.state import Workbench
 from app.style import PALETTE, faded, fmt_sigma, log_ticks, pen, plot_widget
@@ -29,13 +29,8 @@ class LatentPanel(QWidget):
         workbench.entry_changed.connect(self._entry_updated)
 
     def _build(self) -> None:
-        outer = QVBoxLayout(self)
-        outer.setContentsMargins(14, 12, 14, 12)
-        outer.setSpacing(10)
-        figures = QFrame()
-        figures.setObjectName("card")
-        row = QHBoxLayout(figures)
-        row.setContentsMargins(14, 10, 14, 10)
+        outer = page_layout(self, 10)
+        figures, row = card(QHBoxLayout, margins=(14, 10))
         box, self.active_value, self.active_note = figure_box("active dimensions", 24)
         row.addWidget(box)
         box, self.kl_value, self.kl_note = figure_box("KL to N(0, I) per chunk", 24)

@@ -13,12 +13,11 @@ import numpy as np
 from PySide6.QtCore import Qt, QTimer, Signal
 from PySide6.QtGui import QStandardItemModel
 from PySide6.QtWidgets import (
-    QAbstractSpinBox,
-    QComboBox, QFrame, QGridLayout, QHBoxLayout, QLabel, QPushButton, QSpinBox, QVBoxLayout, QWidget,
+    QAbstractSpinBox, QComboBox, QGridLayout, QHBoxLayout, QLabel, QPushButton, QSpinBox, QWidget,
 )
 from superqt import QLabeledDoubleSlider
 
-from app.controls import figure_box
+from app.controls import card, figure_box, page_layout
 from app.state import Workbench
 from app.style import PALETTE, fmt_percent, show_piece
 from app.tokentext import TokenText, wrong_decoded_format, wrong_original_format
@@ -89,14 +88,9 @@ class LivePanel(QWidget):
     # ---- layout --------------------------------------------------------------------------
 
     def _build(self) -> None:
-        outer = QVBoxLayout(self)
-        outer.setContentsMargins(14, 12, 14, 12)
-        outer.setSpacing(10)
+        outer = page_layout(self, 10)
 
-        controls = QFrame()
-        controls.setObjectName("card")
-        grid = QGridLayout(controls)
-        grid.setContentsMargins(14, 10, 14, 10)
+        controls, grid = card(QGridLayout, margins=(14, 10))
         grid.setHorizontalSpacing(12)
         grid.setVerticalSpacing(4)
 
@@ -171,8 +165,8 @@ class LivePanel(QWidget):
         panes.addLayout(head, 0, 1)
         self.original = TokenText("The evaluation text appears here once a checkpoint is loaded.")
         self.decoded = TokenText("")
-        self.original.tooltip_for = self._tooltip_original
-        self.decoded.tooltip_for = self._tooltip_decoded
+        self.original.tooltip_for = self._tooltip
+        self.decoded.tooltip_for = self._tooltip
         panes.addWidget(self.original, 1, 0)
         panes.addWidget(self.decoded, 1, 1)
         hint = QLabel("Tokens that decode wrong are marked in both panes. Hover a token for the decoder's top alternatives.")
@@ -417,12 +411,6 @@ class LivePanel(QWidget):
         self._syncing = True
         self.original.scroll_to_token(self.decoded.first_visible_token())
         self._syncing = False
-
-    def _tooltip_original(self, token: int) -> str:
-        return self._tooltip(token)
-
-    def _tooltip_decoded(self, token: int) -> str:
-        return self._tooltip(token)
 
     def _tooltip(self, token: int) -> str:
         entry = self.workbench.entry()

@@ -6,10 +6,10 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import (
-    QCheckBox, QFrame, QGridLayout, QHBoxLayout, QLabel, QProgressBar, QPushButton, QVBoxLayout, QWidget,
+    QCheckBox, QGridLayout, QHBoxLayout, QLabel, QProgressBar, QPushButton, QVBoxLayout, QWidget,
 )
 
-from app.controls import GridControls, caption
+from app.controls import GridControls, caption, card, page_layout
 from app.export import add_export_menu
 from app.state import Workbench
 from app.style import PALETTE, faded, fmt_percent, fmt_sigma, legend, log_ticks, pen, plot_widget, series_colours
@@ -44,17 +44,12 @@ class SweepPanel(QWidget):
     # ---- layout --------------------------------------------------------------------------
 
     def _build(self) -> None:
-        outer = QVBoxLayout(self)
-        outer.setContentsMargins(14, 12, 14, 12)
-        outer.setSpacing(10)
+        outer = page_layout(self, 10)
 
-        controls = QFrame()
-        controls.setObjectName("card")
-        card = QVBoxLayout(controls)
-        card.setContentsMargins(14, 8, 14, 8)
+        controls, card_layout = card()
         self.grid_controls = GridControls(DEFAULTS, noise_label="model", order=("noise", "repeats", "seed"),
                                           zero_text="and σ = 0", two_rows=True)
-        card.addWidget(self.grid_controls)
+        card_layout.addWidget(self.grid_controls)
         g = self.grid_controls
         self.start, self.stop, self.points, self.spacing, self.zero = g.start, g.stop, g.points, g.spacing, g.zero
         self.repeats, self.noise, self.seed = g.repeats, g.noise, g.seed

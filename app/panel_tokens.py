@@ -9,10 +9,11 @@ import pyqtgraph as pg
 from PySide6.QtCore import QRectF, QSize, Qt, Signal
 from PySide6.QtGui import QColor, QPainter
 from PySide6.QtWidgets import (
-    QAbstractItemView, QFrame, QHBoxLayout, QHeaderView, QLabel, QSplitter, QTableWidget, QTableWidgetItem,
-    QVBoxLayout, QWidget,
+    QAbstractItemView, QHBoxLayout, QHeaderView, QLabel, QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout,
+    QWidget,
 )
 
+from app.controls import card, page_layout
 from app.export import add_export_menu
 from app.state import Workbench
 from app.style import (
@@ -110,9 +111,7 @@ class TokensPanel(QWidget):
         workbench.entry_changed.connect(self._entry_updated)
 
     def _build(self) -> None:
-        outer = QVBoxLayout(self)
-        outer.setContentsMargins(14, 12, 14, 12)
-        outer.setSpacing(8)
+        outer = page_layout(self, 8)
         head = QHBoxLayout()
         title = QLabel("Text coloured by each token's critical σ")
         title.setObjectName("title")
@@ -146,11 +145,7 @@ class TokensPanel(QWidget):
         rv = QVBoxLayout(right)
         rv.setContentsMargins(0, 0, 0, 0)
         rv.setSpacing(8)
-        card = QFrame()
-        card.setObjectName("card")
-        cv = QVBoxLayout(card)
-        cv.setContentsMargins(10, 8, 10, 8)
-        cv.setSpacing(2)
+        token_card, cv = card(margins=(10, 8), spacing=2)
         self.token_title = QLabel("No token selected")
         self.token_title.setObjectName("title")
         self.token_title.setTextFormat(Qt.TextFormat.RichText)
@@ -164,8 +159,8 @@ class TokensPanel(QWidget):
         self.token_plot.setMinimumHeight(120)
         self.token_plot.setStyleSheet("border: none")
         cv.addWidget(self.token_plot, 1)
-        card.setMaximumHeight(330)
-        rv.addWidget(card, 0)
+        token_card.setMaximumHeight(330)
+        rv.addWidget(token_card, 0)
 
         label = QLabel("MOST FRAGILE TOKEN TYPES")
         label.setObjectName("section")

@@ -12,12 +12,12 @@ import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (
-    QAbstractItemView, QFileDialog, QFrame, QHBoxLayout, QHeaderView, QProgressBar, QPushButton, QSplitter,
-    QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
+    QAbstractItemView, QFileDialog, QHBoxLayout, QHeaderView, QProgressBar, QPushButton, QSplitter, QTableWidget,
+    QTableWidgetItem, QWidget,
 )
 
 import core
-from app.controls import GridControls, caption
+from app.controls import GridControls, caption, card, page_layout
 from app.export import add_export_menu
 from app.style import PALETTE, fmt_percent, legend, pen, plot_widget
 from app.workers import Runner, Task
@@ -98,15 +98,9 @@ class TrendPanel(QWidget):
     # ---- layout --------------------------------------------------------------------------
 
     def _build(self) -> None:
-        outer = QVBoxLayout(self)
-        outer.setContentsMargins(14, 12, 14, 12)
-        outer.setSpacing(8)
+        outer = page_layout(self, 8)
 
-        controls = QFrame()
-        controls.setObjectName("card")
-        cv = QVBoxLayout(controls)
-        cv.setContentsMargins(14, 8, 14, 8)
-        cv.setSpacing(6)
+        controls, cv = card(spacing=6)
         top = QHBoxLayout()
         top.setSpacing(8)
         self.choose_button = QPushButton("Choose folder…")

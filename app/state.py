@@ -206,39 +206,40 @@ class Workbench(QObject):
 
     # ---- derived work --------------------------------------------------------------------
 
-    def _start_encode(self, entry: Entry) -> None:
-        entry.busy.add("encode")
+    def _start_for_text(self, entry: Entry, kind: str, title: str, fn, *args, apply) -> None:
+        """Run `fn` for an entry on the current text; its result is dropped if the entry was
+        closed or the text changed meanwhile, else `apply(entry, result)` stores it."""
+        entry.busy.add(kind)
         sha = self.text_sha
-        task = Task(f"encoding the text with {entry.name}", _encode, entry.codec, self.text, self.text_source)
-        task.finished.connect(lambda result, p=entry.path, s=sha: self._encoded(p, s, result))
+        task = Task(title, fn, *args)
+        task.finished.connect(lambda result, p=entry.path, s=sha: self._done_for_text(p, s, kind, result, apply))
         task.failed.connect(self.error)
         self.runner.start(task)
 
-    def _encoded(self, path: str, sha: str, result) -> None:
+    def _done_for_text(self, path: str, sha: str, kind: str, result, apply) -> None:
         entry = self.entries.get(path)
         if entry is None or sha != self.text_sha:
             return
-        entry.busy.discard("encode")
-        entry.chunks, entry.encoded = result
-        entry.text_sha = sha
-        self._start_health(entry)
+        entry.busy.discard(kind)
+        apply(entry, result)
         self.entry_changed.emit(path)
+
+    def _start_encode(self, entry: Entry) -> None:
+        self._start_for_text(entry, "encode", f"encoding the text with {entry.name}", _encode, entry.codec, self.text,
+                             self.text_source, apply=self._encoded)
+
+    def _encoded(self, entry: Entry, result) -> None:
+        entry.chunks, entry.encoded = result
+        entry.text_sha = self.text_sha
+        self._start_health(entry)
 
     def _start_health(self, entry: Entry) -> None:
-        entry.busy.add("health")
-        sha = self.text_sha
-        task = Task(f"measuring the latent health of {entry.name}", _health, entry.codec, entry.chunks, entry.encoded)
-        task.finished.connect(lambda result, p=entry.path, s=sha: self._healthy(p, s, result))
-        task.failed.connect(self.error)
-        self.runner.start(task)
+        self._start_for_text(entry, "health", f"measuring the latent health of {entry.name}", _health, entry.codec,
+                             entry.chunks, entry.encoded, apply=self._healthy)
 
-    def _healthy(self, path: str, sha: str, result) -> None:
-        entry = self.entries.get(path)
-        if entry is None or sha != self.text_sha:
-            return
-        entry.busy.discard("health")
+    @staticmethod
+    def _healthy(entry: Entry, result) -> None:
         entry.health = result
-        self.entry_changed.emit(path)
 
     # ---- sweeps --------------------------------------------------------------------------
 
