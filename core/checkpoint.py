@@ -14,7 +14,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 from safetensors import safe_open
 from tokenizers import Tokenizer
 

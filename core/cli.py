@@ -211,7 +211,7 @@ def cmd_trend(args: argparse.Namespace) -> int:
         print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} {point.accuracy_at_zero * 100:8.3f}% "
               + " ".join(f"{x:>9}" for x in tols), flush=True)
     if out is not None:
-        from core.report import write_text_atomic
+        from core.files import write_text_atomic
 
         write_text_atomic(out / "trend.csv", trend_csv(points), force=args.force)
         write_text_atomic(out / "trend.json", json.dumps([p.to_dict() for p in sort_points(points)], indent=1), force=args.force)
@@ -222,7 +222,8 @@ def cmd_trend(args: argparse.Namespace) -> int:
 def cmd_report(args: argparse.Namespace) -> int:
     from core.checkpoint import load_codec
     from core.compare import read_comparison
-    from core.report import build_report, write_text_atomic
+    from core.files import write_text_atomic
+    from core.report import build_report
     from core.sweep import read_sweep, run_sweep
     from core.text import chunk_text
     from core.trend import trend

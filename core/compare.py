@@ -12,13 +12,13 @@ from __future__ import annotations
 import json
 import math
 import os
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from core.errors import ChunkscopeError, SweepCancelled
+from core.errors import ChunkscopeError
 from core.files import staged_folder
 from core.latent import encode_chunks
 from core.sweep import DEFAULT_SIGMAS, SweepResult, SweepSettings, read_sweep, run_sweep

@@ -9,11 +9,9 @@ import math
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from html import escape
-from pathlib import Path
 from typing import Sequence
 
 import core
-from core.files import write_text_atomic  # noqa: F401  (re-exported for callers)
 from core.compare import Comparison
 from core.svgplot import Chart, Marker, Series, render
 from core.sweep import SweepResult

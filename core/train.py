@@ -24,7 +24,7 @@ import math
 import platform
 import sys
 import time
-from dataclasses import asdict, dataclass, field, fields, replace
+from dataclasses import asdict, dataclass, replace
 from functools import lru_cache
 from pathlib import Path
 from typing import Any, Callable, Sequence
@@ -37,7 +37,7 @@ from core.checkpoint import Codec, save_codec
 from core.corpus import Corpus, build_corpus
 from core.model import ChunkMLP, ChunkMLPConfig, build_model
 from core.text import Chunks, chunk_text, demo_text, text_sha256
-from core.tokenizer import MASK_TOKEN, PAD_TOKEN, token_byte_lengths, train_byte_bpe
+from core.tokenizer import MASK_TOKEN, PAD_TOKEN, train_byte_bpe
 
 Log = Callable[[str], None]
 
