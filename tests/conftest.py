@@ -1,5 +1,6 @@
 """Shared fixtures: a tokenizer trained on a few paragraphs, a small untrained chunk-mlp
-checkpoint, and a contract-only codec that reconstructs perfectly at sigma = 0."""
+checkpoint, a contract-only codec that reconstructs perfectly at sigma = 0, and one main
+window on the shipped samples per GUI test module."""
 
 from __future__ import annotations
 
@@ -95,3 +96,26 @@ def fixture_text():
 
 def rng(seed: int = 0) -> np.random.Generator:
     return np.random.default_rng(seed)
+
+
+@pytest.fixture(scope="module")
+def settings_path(tmp_path_factory):
+    """Where the module's window keeps its settings (a module may override this fixture)."""
+    return tmp_path_factory.mktemp("settings") / "chunkscope.ini"
+
+
+@pytest.fixture(scope="module")
+def window(qapp, settings_path):
+    """The main window on the shipped samples and the demo text, shown, one per module."""
+    from app.main import make_settings
+    from app.state import sample_paths
+    from app.window import MainWindow
+
+    if not sample_paths():
+        pytest.skip("the sample checkpoints are not there")
+    win = MainWindow(make_settings(settings_path))
+    win.show()
+    yield win
+    if win.isVisible():
+        win.close()
+    win.runner.shutdown()

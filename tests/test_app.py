@@ -27,6 +27,7 @@ WAIT = 60_000  # ms; generous for a loaded CI machine, a healthy run takes a fra
 
 @pytest.fixture(scope="module")
 def settings_path(tmp_path_factory):
+    # also the default settings file, for the screenshot run_workbench makes in this module
     path = tmp_path_factory.mktemp("settings") / "chunkscope.ini"
     old = os.environ.get("CHUNKSCOPE_SETTINGS")
     os.environ["CHUNKSCOPE_SETTINGS"] = str(path)
@@ -35,18 +36,6 @@ def settings_path(tmp_path_factory):
         os.environ.pop("CHUNKSCOPE_SETTINGS", None)
     else:
         os.environ["CHUNKSCOPE_SETTINGS"] = old
-
-
-@pytest.fixture(scope="module")
-def window(qapp, settings_path):
-    if not sample_paths():
-        pytest.skip("the sample checkpoints are not there")
-    win = MainWindow(make_settings(settings_path))
-    win.show()
-    yield win
-    if win.isVisible():
-        win.close()
-    win.runner.shutdown()
 
 
 def wait_ready(qtbot, window):

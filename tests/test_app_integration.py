@@ -1,7 +1,7 @@
 """The compare and training-run views, workspaces, saved sweep folders, reports and the
 checkpoint details, driven through the main window (pytest-qt, offscreen).
 
-One window is opened for the module, as in test_app.py; grids are tiny and one repeat.
+One window is opened for the module (the `window` fixture of conftest.py); grids are tiny and one repeat.
 """
 
 import os
@@ -23,23 +23,6 @@ from core.text import chunk_text  # noqa: E402
 WAIT = 60_000
 TINY = {"start": 0.05, "stop": 1.0, "points": 3, "spacing": "log", "zero": True, "repeats": 1, "noise": "data-scale",
         "seed": 0}
-
-
-@pytest.fixture(scope="module")
-def settings_path(tmp_path_factory):
-    return tmp_path_factory.mktemp("settings") / "chunkscope.ini"
-
-
-@pytest.fixture(scope="module")
-def window(qapp, settings_path):
-    if not sample_paths():
-        pytest.skip("the sample checkpoints are not there")
-    win = MainWindow(make_settings(settings_path))
-    win.show()
-    yield win
-    if win.isVisible():
-        win.close()
-    win.runner.shutdown()
 
 
 def wait_ready(qtbot, win):

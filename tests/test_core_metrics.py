@@ -1,6 +1,5 @@
 """Metric definitions checked against outside references, each named beside its check."""
 
-import numpy as np
 import pytest
 import torch
 from scipy import stats
