@@ -14,6 +14,7 @@ from PySide6.QtWidgets import (
 
 from app.style import PALETTE
 from core.latent import NOISE_MODELS
+from core.sweep import SweepSettings
 from core.views import sigma_grid
 
 
@@ -178,3 +179,8 @@ class GridControls(QWidget):
         """The sigma grid these settings describe (SettingsError when they describe none)."""
         s = self.settings_dict()
         return sigma_grid(s["start"], s["stop"], s["points"], s["spacing"], s["zero"])
+
+    def sweep_settings(self) -> SweepSettings:
+        """These settings as the engine's SweepSettings (SettingsError when the grid is impossible)."""
+        s = self.settings_dict()
+        return SweepSettings(sigmas=self.sigmas(), repeats=s["repeats"], noise=s[self.noise_key], seed=s["seed"])

@@ -26,7 +26,7 @@ from app.workers import Runner, Task
 from core.compare import Comparison, compare_codecs, unit_correctness
 from core.errors import SettingsError
 from core.report import provenance_caption
-from core.sweep import SweepResult
+from core.sweep import SweepResult, tolerance_text
 from core.text import text_sha256
 
 DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 16, "spacing": "log", "zero": True, "repeats": 2, "seed": 0,
@@ -53,12 +53,8 @@ def _swatch(colour: str, size: int = 10) -> QIcon:
 
 
 def tolerance_label(t: dict) -> str:
-    """How a tolerance reads in a table cell (the same words as core.sweep.Tolerance.label)."""
-    if t["status"] == "below_at_zero":
-        return "fails at 0"
-    if t["status"] == "above_grid":
-        return f"> {t['sigma']:.4g}"
-    return f"{t['sigma']:.4g}"
+    """How a tolerance stored as a dict ({"sigma", "status"}) reads in a table cell."""
+    return tolerance_text(t["sigma"], t["status"])
 
 
 def mark_formats() -> dict[int, QTextCharFormat]:

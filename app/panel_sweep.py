@@ -153,8 +153,7 @@ class SweepPanel(QWidget):
         self.grid_controls.restore(values)
 
     def sweep_settings(self) -> SweepSettings:
-        s = self.settings_dict()
-        return SweepSettings(sigmas=self.grid_controls.sigmas(), repeats=s["repeats"], noise=s["noise"], seed=s["seed"])
+        return self.grid_controls.sweep_settings()
 
     # ---- running -------------------------------------------------------------------------
 

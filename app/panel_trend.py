@@ -184,9 +184,7 @@ class TrendPanel(QWidget):
         self.grid_controls.restore(values)
 
     def sweep_settings(self) -> SweepSettings:
-        s = self.settings_dict()
-        return SweepSettings(sigmas=self.grid_controls.sigmas(), repeats=s["repeats"], noise=s["noise"],
-                             seed=s["seed"]).validated()
+        return self.grid_controls.sweep_settings().validated()
 
     def set_text(self, text: str, text_source: str = "") -> None:
         """The evaluation text every checkpoint is swept on (the demo text until this is called)."""

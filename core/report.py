@@ -14,7 +14,7 @@ from typing import Sequence
 import core
 from core.compare import Comparison
 from core.svgplot import Chart, Marker, Series, render
-from core.sweep import SweepResult
+from core.sweep import SweepResult, tolerance_text
 from core.tokens import fragile_types
 from core.trend import TrendPoint, sort_points
 
@@ -40,11 +40,7 @@ def _pct(x: float | None, digits: int = 3) -> str:
 
 
 def _tol(t: dict) -> str:
-    if t["status"] == "below_at_zero":
-        return "fails at 0"
-    if t["status"] == "above_grid":
-        return f"&gt; {t['sigma']:.4g}"
-    return f"{t['sigma']:.4g}"
+    return escape(tolerance_text(t["sigma"], t["status"]))
 
 
 def provenance_caption(sweeps: Sequence[SweepResult]) -> str:

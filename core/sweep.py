@@ -105,11 +105,16 @@ class Tolerance:
     status: str
 
     def label(self) -> str:
-        if self.status == "below_at_zero":
-            return "fails at 0"
-        if self.status == "above_grid":
-            return f"> {self.sigma:.4g}"
-        return f"{self.sigma:.4g}"
+        return tolerance_text(self.sigma, self.status)
+
+
+def tolerance_text(sigma: float | None, status: str) -> str:
+    """How a tolerance reads: its sigma, "> sigma" when accuracy never dropped on the grid, or "fails at 0"."""
+    if status == "below_at_zero":
+        return "fails at 0"
+    if status == "above_grid":
+        return f"> {sigma:.4g}"
+    return f"{sigma:.4g}"
 
 
 def tolerance_at(sigmas: Sequence[float], accuracy: Sequence[float], level: float) -> Tolerance:
