@@ -9,7 +9,7 @@ from typing import Sequence
 from PySide6.QtCore import Qt
 from PySide6.QtWidgets import (
     QAbstractSpinBox, QBoxLayout, QCheckBox, QComboBox, QDoubleSpinBox, QFrame, QGridLayout, QHBoxLayout, QLabel,
-    QLayout, QSpinBox, QVBoxLayout, QWidget,
+    QLayout, QProgressBar, QPushButton, QSpinBox, QVBoxLayout, QWidget,
 )
 
 from app.style import PALETTE
@@ -36,6 +36,20 @@ def card(layout: type[QLayout] = QVBoxLayout, margins: tuple[int, int] = (14, 8)
     if spacing is not None and isinstance(inner, QBoxLayout):
         inner.setSpacing(spacing)
     return frame, inner
+
+
+def run_controls(text: str, on_run, on_cancel, progress_width: int = 90):
+    """The run button, its cancel button and a thin progress bar of a long computation."""
+    run_button = QPushButton(text)
+    run_button.setObjectName("primary")
+    run_button.clicked.connect(on_run)
+    cancel_button = QPushButton("Cancel")
+    cancel_button.clicked.connect(on_cancel)
+    progress = QProgressBar()
+    progress.setTextVisible(False)
+    progress.setFixedHeight(6)
+    progress.setMinimumWidth(progress_width)
+    return run_button, cancel_button, progress
 
 
 def caption(text: str, name: str = "caption") -> QLabel:

@@ -13,11 +13,11 @@ import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtGui import QColor, QIcon, QPixmap, QTextCharFormat
 from PySide6.QtWidgets import (
-    QAbstractItemView, QCheckBox, QComboBox, QFrame, QHBoxLayout, QHeaderView, QLabel, QListWidget,
-    QListWidgetItem, QProgressBar, QPushButton, QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
+    QAbstractItemView, QCheckBox, QComboBox, QFrame, QHBoxLayout, QHeaderView, QLabel, QListWidget, QListWidgetItem,
+    QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
 )
 
-from app.controls import GridControls, caption, card, page_layout
+from app.controls import GridControls, caption, card, page_layout, run_controls
 from app.export import add_export_menu
 from app.plotaxes import use_sigma_axis
 from app.style import PALETTE, faded, fmt_percent, legend, pen, plot_widget
@@ -207,17 +207,9 @@ class ComparePanel(QWidget):
         self.repeats, self.seed, self.main_noise = g.repeats, g.seed, g.noise
         row = g.layout()  # one row; the run controls follow the grid's
         row.addSpacing(10)
-        self.run_button = QPushButton("Compare")
-        self.run_button.setObjectName("primary")
-        self.run_button.clicked.connect(self.run)
-        self.cancel_button = QPushButton("Cancel")
-        self.cancel_button.clicked.connect(self.cancel)
+        self.run_button, self.cancel_button, self.progress = run_controls("Compare", self.run, self.cancel)
         row.addWidget(self.run_button)
         row.addWidget(self.cancel_button)
-        self.progress = QProgressBar()
-        self.progress.setTextVisible(False)
-        self.progress.setFixedHeight(6)
-        self.progress.setMinimumWidth(90)
         row.addWidget(self.progress, 1)
         self.log_box = QCheckBox("log σ axis")
         self.log_box.setChecked(True)

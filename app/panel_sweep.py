@@ -6,10 +6,10 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import (
-    QCheckBox, QGridLayout, QHBoxLayout, QLabel, QProgressBar, QPushButton, QVBoxLayout, QWidget,
+    QCheckBox, QGridLayout, QHBoxLayout, QLabel, QVBoxLayout, QWidget,
 )
 
-from app.controls import GridControls, caption, card, page_layout
+from app.controls import GridControls, caption, card, page_layout, run_controls
 from app.export import add_export_menu
 from app.state import Workbench
 from app.style import PALETTE, faded, fmt_percent, fmt_sigma, legend, log_ticks, pen, plot_widget, series_colours
@@ -59,20 +59,13 @@ class SweepPanel(QWidget):
         self.log_box.toggled.connect(self._log_toggled)
         grid.addWidget(self.log_box, 1, 8)
         grid.setColumnStretch(10, 1)
-        self.run_button = QPushButton("Run sweep")
-        self.run_button.setObjectName("primary")
-        self.run_button.clicked.connect(self.run)
-        self.cancel_button = QPushButton("Cancel")
+        self.run_button, self.cancel_button, self.progress = run_controls(
+            "Run sweep", self.run, lambda: self.workbench.cancel_sweep(), progress_width=180)
         self.cancel_button.setEnabled(False)
-        self.cancel_button.clicked.connect(lambda: self.workbench.cancel_sweep())
         buttons = QHBoxLayout()
         buttons.addWidget(self.run_button)
         buttons.addWidget(self.cancel_button)
         grid.addLayout(buttons, 0, 11)
-        self.progress = QProgressBar()
-        self.progress.setTextVisible(False)
-        self.progress.setFixedHeight(6)
-        self.progress.setMinimumWidth(180)
         grid.addWidget(self.progress, 1, 11)
         outer.addWidget(controls)
         self.restore(DEFAULTS)

@@ -12,12 +12,12 @@ import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (
-    QAbstractItemView, QFileDialog, QHBoxLayout, QHeaderView, QProgressBar, QPushButton, QSplitter, QTableWidget,
-    QTableWidgetItem, QWidget,
+    QAbstractItemView, QFileDialog, QHBoxLayout, QHeaderView, QPushButton, QSplitter, QTableWidget, QTableWidgetItem,
+    QWidget,
 )
 
 import core
-from app.controls import GridControls, caption, card, page_layout
+from app.controls import GridControls, caption, card, page_layout, run_controls
 from app.export import add_export_menu
 from app.style import PALETTE, fmt_percent, legend, pen, plot_widget
 from app.workers import Runner, Task
@@ -118,17 +118,10 @@ class TrendPanel(QWidget):
         self.repeats, self.noise, self.seed = g.repeats, g.noise, g.seed
         row = g.layout()  # one row; the run controls follow the grid's
         row.addSpacing(10)
-        self.run_button = QPushButton("Measure run")
-        self.run_button.setObjectName("primary")
-        self.run_button.clicked.connect(lambda: self.run_folder(self.folder) if self.folder else self.choose_folder())
-        self.cancel_button = QPushButton("Cancel")
-        self.cancel_button.clicked.connect(self.cancel)
+        self.run_button, self.cancel_button, self.progress = run_controls(
+            "Measure run", lambda: self.run_folder(self.folder) if self.folder else self.choose_folder(), self.cancel)
         row.addWidget(self.run_button)
         row.addWidget(self.cancel_button)
-        self.progress = QProgressBar()
-        self.progress.setTextVisible(False)
-        self.progress.setFixedHeight(6)
-        self.progress.setMinimumWidth(90)
         row.addWidget(self.progress, 1)
         cv.addWidget(g)
         outer.addWidget(controls)
