@@ -194,6 +194,8 @@ class ComparePanel(QWidget):
         self.reference.setMinimumWidth(160)
         self.reference.setToolTip("the reference checkpoint: differences are each other checkpoint minus this one")
         self.reference.currentIndexChanged.connect(lambda _i: self._sync_controls())
+        self.reference_picked = False  # until the user picks A, A is the first checkpoint opened
+        self.reference.activated.connect(lambda _i: setattr(self, "reference_picked", True))
         pick.addWidget(self.reference)
         cv.addLayout(pick)
 
@@ -361,7 +363,9 @@ class ComparePanel(QWidget):
             item.setToolTip(codec.path or codec.name)
             self.picker.addItem(item)
             self.reference.addItem(codec.name)
-        at = self.reference.findText(reference)
+        # the first checkpoint in the order they were opened, not the first to finish loading,
+        # unless the user chose another
+        at = self.reference.findText(reference) if self.reference_picked else -1
         self.reference.setCurrentIndex(at if at >= 0 else 0)
         self.picker.blockSignals(False)
         self.reference.blockSignals(False)

@@ -47,6 +47,19 @@ def two_codecs(tokenizer):
     return _lookup(tokenizer, "sharp", sharpness=20.0), _lookup(tokenizer, "soft", sharpness=6.0, seed=4)
 
 
+def test_reference_is_the_first_opened_until_the_user_picks_one(compare_panel, two_codecs):
+    # checkpoints finish loading in any order; A follows the opening order unless the user chose A
+    panel = compare_panel
+    sharp, soft = two_codecs
+    panel.set_inputs([soft], FIXTURE_TEXT, "fixture")  # "soft" finished loading first
+    panel.set_inputs([sharp, soft], FIXTURE_TEXT, "fixture")
+    assert panel.reference.currentText() == "sharp"
+    panel.reference.setCurrentIndex(1)
+    panel.reference.activated.emit(1)  # what a user's choice in the box sends
+    panel.set_inputs([sharp, soft], FIXTURE_TEXT + "more", "fixture")
+    assert panel.reference.currentText() == "soft"
+
+
 def test_compare_panel_runs_and_its_table_holds_the_comparisons_numbers(compare_panel, two_codecs, qtbot):
     from app.panel_compare import tolerance_label
 
