@@ -13,9 +13,9 @@ from PySide6.QtWidgets import (
 )
 
 from app.style import PALETTE
-from core.latent import NOISE_MODELS
-from core.sweep import SweepSettings
-from core.views import sigma_grid
+from core.engine.noise import NOISE_MODELS
+from core.engine.sweep import SweepSettings
+from core.analyses.views import sigma_grid
 
 
 def page_layout(page: QWidget, spacing: int) -> QVBoxLayout:

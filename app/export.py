@@ -1,7 +1,7 @@
 """Save a plot for a lab meeting: PNG at a chosen width and DPI, or SVG, each with a caption
 line saying what was measured (checkpoints, text, noise, seed, repeats) drawn into it.
 
-Writes are staged beside the target and renamed (core.files); nothing is replaced unless
+Writes are staged beside the target and renamed (core.outputs.files); nothing is replaced unless
 the caller passes force=True, which the dialog does only after asking.
 """
 
@@ -21,7 +21,7 @@ from PySide6.QtWidgets import (
 )
 
 from app.style import PALETTE, SANS
-from core.files import staged_file
+from core.outputs.files import staged_file
 
 FORMATS = ("png", "svg")
 DEFAULT_WIDTH = 1600

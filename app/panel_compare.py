@@ -1,7 +1,7 @@
 """Compare checkpoints: accuracy curves overlaid, the paired difference with its McNemar
 tests, tolerances side by side, and the text at one sigma marked where they disagree.
 
-Everything shown comes from `core.compare`; the panel only runs it in a worker and draws."""
+Everything shown comes from `core.analyses.compare`; the panel only runs it in a worker and draws."""
 
 from __future__ import annotations
 
@@ -23,11 +23,11 @@ from app.plotaxes import use_sigma_axis
 from app.style import PALETTE, faded, fmt_percent, legend, pen, plot_widget
 from app.tokentext import TokenText, char_format
 from app.workers import Runner, Task
-from core.compare import Comparison, compare_codecs, unit_correctness
+from core.analyses.compare import Comparison, compare_codecs, unit_correctness
 from core.errors import SettingsError
-from core.report import provenance_caption
-from core.sweep import SweepResult, tolerance_text
-from core.text import text_sha256
+from core.outputs.report import provenance_caption
+from core.engine.sweep import SweepResult, tolerance_text
+from core.engine.text import text_sha256
 
 DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 16, "spacing": "log", "zero": True, "repeats": 2, "seed": 0,
             "main_noise": "data-scale"}

@@ -13,8 +13,8 @@ from app.export import add_export_menu
 from app.state import Workbench
 from app.style import PALETTE, faded, fmt_sigma, log_ticks, pen, plot_widget
 import core
-from core.report import provenance_caption
-from core.health import ACTIVE_THRESHOLD, expected_noise_norm
+from core.outputs.report import provenance_caption
+from core.engine.health import ACTIVE_THRESHOLD, expected_noise_norm
 
 
 class LatentPanel(QWidget):

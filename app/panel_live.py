@@ -22,14 +22,14 @@ from app.state import Workbench
 from app.style import PALETTE, fmt_percent, show_piece
 from app.tokentext import TokenText, wrong_decoded_format, wrong_original_format
 from app.workers import Task
-from core.latent import NOISE_MODELS
-from core.live import LivePerturbation
-from core.text import Chunks
-from core.tokenizer import token_display
-from core.views import LiveWindow, decoded_layout, merge_windows, perturb_window, remaining_ranges
+from core.engine.noise import NOISE_MODELS
+from core.analyses.live import LivePerturbation
+from core.engine.text import Chunks
+from core.codecs.tokenizer import token_display
+from core.analyses.views import LiveWindow, decoded_layout, merge_windows, perturb_window, remaining_ranges
 
 RELATIVE_MAX = 2.0
-TOP_K = 5  # alternatives shown when hovering a token (core.views.perturb_window's default)
+TOP_K = 5  # alternatives shown when hovering a token (core.analyses.views.perturb_window's default)
 MAX_MARKED = 4000  # beyond this many wrong tokens the panes stop marking each one
 
 

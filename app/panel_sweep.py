@@ -14,10 +14,10 @@ from app.export import add_export_menu
 from app.state import Workbench
 from app.style import PALETTE, faded, fmt_percent, fmt_sigma, legend, log_ticks, pen, plot_widget, series_colours
 from core.errors import SettingsError
-from core.latent import NOISE_MODELS
-from core.report import provenance_caption
-from core.sweep import SweepResult, SweepSettings
-from core.views import error_rate_floor
+from core.engine.noise import NOISE_MODELS
+from core.outputs.report import provenance_caption
+from core.engine.sweep import SweepResult, SweepSettings
+from core.analyses.views import error_rate_floor
 
 DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 24, "spacing": "log", "zero": True, "repeats": 2,
             "noise": "data-scale", "seed": 0}

@@ -21,10 +21,10 @@ from app.style import (
 )
 from app.tokentext import TokenText, char_format
 from app.workers import Task
-from core.report import provenance_caption
-from core.sweep import SweepResult
-from core.tokens import fragile_types
-from core.views import bucket_accuracy_table, critical_sigma_levels, token_story
+from core.outputs.report import provenance_caption
+from core.engine.sweep import SweepResult
+from core.analyses.tokens import fragile_types
+from core.analyses.views import bucket_accuracy_table, critical_sigma_levels, token_story
 
 
 def _fragile(task: Task, result: SweepResult, tokenizer):

@@ -1,6 +1,6 @@
 """Tolerance through a training run: every checkpoint of a folder swept in a worker, each
 point drawn as soon as it is measured; a checkpoint that cannot be read is listed with its
-one-sentence problem and the rest are still measured (core.trend)."""
+one-sentence problem and the rest are still measured (core.analyses.trend)."""
 
 from __future__ import annotations
 
@@ -22,9 +22,9 @@ from app.export import add_export_menu
 from app.style import PALETTE, fmt_percent, legend, pen, plot_widget
 from app.workers import Runner, Task
 from core.errors import ChunkscopeError
-from core.sweep import SweepSettings
-from core.text import demo_text
-from core.trend import TrendPoint, checkpoints_in, sort_points, trend
+from core.engine.sweep import SweepSettings
+from core.engine.text import demo_text
+from core.analyses.trend import TrendPoint, checkpoints_in, sort_points, trend
 
 DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 12, "spacing": "log", "zero": True, "repeats": 2,
             "noise": "data-scale", "seed": 0}

@@ -13,13 +13,13 @@ from typing import Sequence
 from PySide6.QtWidgets import QFileDialog, QWidget
 
 from app.export import confirm_overwrite
-from core.compare import Comparison, read_comparison
+from core.analyses.compare import Comparison, read_comparison
 from core.errors import ChunkscopeError
-from core.report import build_report
-from core.files import write_text_atomic
-from core.sweep import SweepResult, read_sweep
-from core.trend import TrendPoint
-from core.workspace import WORKSPACE_SUFFIX, Workspace, load_workspace, save_workspace
+from core.outputs.report import build_report
+from core.outputs.files import write_text_atomic
+from core.engine.sweep import SweepResult, read_sweep
+from core.analyses.trend import TrendPoint
+from core.outputs.workspace import WORKSPACE_SUFFIX, Workspace, load_workspace, save_workspace
 
 REPORT_FILTER = "HTML report (*.html)"
 WORKSPACE_FILTER = f"chunkscope workspace (*{WORKSPACE_SUFFIX})"

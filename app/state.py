@@ -10,12 +10,12 @@ from pathlib import Path
 
 from PySide6.QtCore import QObject, Signal
 
-from core.checkpoint import CheckpointInfo, Codec, load_codec, read_checkpoint_info
+from core.codecs.checkpoint import CheckpointInfo, Codec, load_codec, read_checkpoint_info
 from core.errors import CheckpointError, TextError
-from core.health import LatentHealth, latent_health
-from core.latent import Encoded, encode_chunks
-from core.sweep import SweepResult, SweepSettings, run_sweep
-from core.text import DEMO_TEXT_PATH, Chunks, check_text, chunk_text, load_text, text_sha256
+from core.engine.health import LatentHealth, latent_health
+from core.engine.noise import Encoded, encode_chunks
+from core.engine.sweep import SweepResult, SweepSettings, run_sweep
+from core.engine.text import DEMO_TEXT_PATH, Chunks, check_text, chunk_text, load_text, text_sha256
 
 from app.workers import Runner, Task
 

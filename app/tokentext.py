@@ -11,7 +11,7 @@ from PySide6.QtGui import QColor, QTextCharFormat, QTextCursor, QTextOption
 from PySide6.QtWidgets import QPlainTextEdit, QToolTip
 
 from app.style import PALETTE, mono_font
-from core.views import token_at
+from core.analyses.views import token_at
 
 
 def _utf16_offsets(text: str) -> np.ndarray | None:

@@ -24,8 +24,8 @@ from app.state import Workbench, default_text_path, sample_paths
 from app.style import mono_font
 from app.workers import Runner
 from core.errors import ChunkscopeError
-from core.sweep import SweepResult
-from core.text import text_sha256
+from core.engine.sweep import SweepResult
+from core.engine.text import text_sha256
 
 VIEWS = ("live", "sweep", "tokens", "latent", "compare", "trend")
 VIEW_TITLES = {"live": "Perturb live", "sweep": "Sweep", "tokens": "Token failures", "latent": "Latent space",

@@ -24,10 +24,10 @@ sys.path.insert(0, str(ROOT))
 
 import torch  # noqa: E402
 
-from core.checkpoint import load_codec  # noqa: E402
-from core.latent import encode_chunks  # noqa: E402
-from core.sweep import SweepSettings, run_sweep  # noqa: E402
-from core.text import chunk_text, demo_text  # noqa: E402
+from core.codecs.checkpoint import load_codec  # noqa: E402
+from core.engine.noise import encode_chunks  # noqa: E402
+from core.engine.sweep import SweepSettings, run_sweep  # noqa: E402
+from core.engine.text import chunk_text, demo_text  # noqa: E402
 
 DEFAULT_CHECKPOINT = ROOT / "sample_models" / "plain.safetensors"
 
@@ -102,9 +102,9 @@ def encode_once(codec, chunks) -> None:
 MEMORY_CHILD = """
 import resource, sys, json
 sys.path.insert(0, {root!r})
-from core.checkpoint import load_codec
-from core.sweep import SweepSettings, run_sweep
-from core.text import chunk_text, demo_text
+from core.codecs.checkpoint import load_codec
+from core.engine.sweep import SweepSettings, run_sweep
+from core.engine.text import chunk_text, demo_text
 codec = load_codec({ckpt!r})
 base = demo_text()
 chunks = chunk_text(base, codec)

@@ -1,21 +1,14 @@
 """chunkscope engine: load chunk autoencoders, perturb their latents, score every token.
 
-Imports no Qt; everything the workbench shows is computed here.
+Imports no Qt; everything the workbench shows is computed here. The subpackages, by concern:
+
+- `core.codecs`: the codec contract, the built-in checkpoint, its architecture, tokenizers
+- `core.engine`: text, noise, streaming metrics, the sweep, latent health
+- `core.analyses`: compare, training-run trend, token views, the live view's computations
+- `core.outputs`: atomic files, the HTML report, the workspace
+- `core.training`: the sample models' corpus and recipe (apart from the engine)
+
+Importing `core` loads nothing but the version.
 """
 
 __version__ = "0.1.0"
-
-from core.errors import ChunkscopeError, CheckpointError, TextError, SettingsError, SweepCancelled
-from core.checkpoint import Codec, load_codec, save_codec
-from core.text import Chunks, chunk_text, load_text
-from core.sweep import SweepSettings, SweepResult, run_sweep
-from core.health import LatentHealth, latent_health
-
-__all__ = [
-    "__version__",
-    "ChunkscopeError", "CheckpointError", "TextError", "SettingsError", "SweepCancelled",
-    "Codec", "load_codec", "save_codec",
-    "Chunks", "chunk_text", "load_text",
-    "SweepSettings", "SweepResult", "run_sweep",
-    "LatentHealth", "latent_health",
-]

@@ -42,7 +42,7 @@ class TerminalProgress:
 
 
 def _load_text_arg(path: str | None) -> tuple[str, str]:
-    from core.text import DEMO_TEXT_PATH, load_text
+    from core.engine.text import DEMO_TEXT_PATH, load_text
 
     if path is None:
         return load_text(DEMO_TEXT_PATH), f"demo text ({DEMO_TEXT_PATH.name})"
@@ -54,9 +54,9 @@ def _fmt(value) -> str:
 
 
 def cmd_info(args: argparse.Namespace) -> int:
-    from core.checkpoint import load_codec
-    from core.health import latent_health
-    from core.text import chunk_text
+    from core.codecs.checkpoint import load_codec
+    from core.engine.health import latent_health
+    from core.engine.text import chunk_text
 
     codec = load_codec(args.checkpoint)
     text, source = _load_text_arg(args.text)
@@ -91,7 +91,7 @@ def cmd_info(args: argparse.Namespace) -> int:
 
 
 def _settings_from_args(args: argparse.Namespace):
-    from core.sweep import SweepSettings, parse_sigmas
+    from core.engine.sweep import SweepSettings, parse_sigmas
 
     sigmas = parse_sigmas(args.sigmas) if args.sigmas else SweepSettings().sigmas
     return SweepSettings(sigmas=sigmas, repeats=args.repeats, noise=args.noise, seed=args.seed, batch_chunks=args.batch)
@@ -113,9 +113,9 @@ def print_tolerance_table(results, stream=None) -> None:
 
 
 def cmd_sweep(args: argparse.Namespace) -> int:
-    from core.checkpoint import load_codec
-    from core.sweep import run_sweep
-    from core.text import chunk_text
+    from core.codecs.checkpoint import load_codec
+    from core.engine.sweep import run_sweep
+    from core.engine.text import chunk_text
 
     settings = _settings_from_args(args)
     text, source = _load_text_arg(args.text)
@@ -147,7 +147,7 @@ def print_comparison(comparison, stream=None) -> None:
     print("tolerance: absolute σ (isotropic) | relative σ (data-scale)", file=stream)
     print(f"{'checkpoint':<20} {'acc@σ=0':>9} {'RMS':>7} | {'99.9 %':>9} {'99 %':>9} {'90 %':>9} | {'99.9 %':>9} {'99 %':>9} {'90 %':>9}", file=stream)
     for t in comparison.tolerances:
-        from core.sweep import Tolerance
+        from core.engine.sweep import Tolerance
 
         iso = [Tolerance(**x).label() for x in t.absolute]
         ds = [Tolerance(**x).label() for x in t.data_scale]
@@ -163,8 +163,8 @@ def print_comparison(comparison, stream=None) -> None:
 
 
 def _comparison_from_args(args, codecs, text, source, progress=None):
-    from core.compare import compare_codecs
-    from core.sweep import parse_sigmas
+    from core.analyses.compare import compare_codecs
+    from core.engine.sweep import parse_sigmas
 
     settings = _settings_from_args(args)
     absolute = parse_sigmas(args.abs_sigmas) if getattr(args, "abs_sigmas", None) else None
@@ -173,7 +173,7 @@ def _comparison_from_args(args, codecs, text, source, progress=None):
 
 
 def cmd_compare(args: argparse.Namespace) -> int:
-    from core.checkpoint import load_codec
+    from core.codecs.checkpoint import load_codec
 
     out = Path(args.out)
     if out.exists() and not args.force:
@@ -191,7 +191,7 @@ def cmd_compare(args: argparse.Namespace) -> int:
 
 
 def cmd_trend(args: argparse.Namespace) -> int:
-    from core.trend import sort_points, trend, trend_csv
+    from core.analyses.trend import sort_points, trend, trend_csv
 
     settings = _settings_from_args(args)
     out = Path(args.out) if args.out else None
@@ -205,13 +205,13 @@ def cmd_trend(args: argparse.Namespace) -> int:
         if point.error:
             print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} failed: {point.error}")
             continue
-        from core.sweep import Tolerance
+        from core.engine.sweep import Tolerance
 
         tols = [Tolerance(level, **point.tolerances[level]).label() for level in (0.999, 0.99, 0.9)]
         print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} {point.accuracy_at_zero * 100:8.3f}% "
               + " ".join(f"{x:>9}" for x in tols), flush=True)
     if out is not None:
-        from core.files import write_text_atomic
+        from core.outputs.files import write_text_atomic
 
         write_text_atomic(out / "trend.csv", trend_csv(points), force=args.force)
         write_text_atomic(out / "trend.json", json.dumps([p.to_dict() for p in sort_points(points)], indent=1), force=args.force)
@@ -220,13 +220,13 @@ def cmd_trend(args: argparse.Namespace) -> int:
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from core.checkpoint import load_codec
-    from core.compare import read_comparison
-    from core.files import write_text_atomic
-    from core.report import build_report
-    from core.sweep import read_sweep, run_sweep
-    from core.text import chunk_text
-    from core.trend import trend
+    from core.codecs.checkpoint import load_codec
+    from core.analyses.compare import read_comparison
+    from core.outputs.files import write_text_atomic
+    from core.outputs.report import build_report
+    from core.engine.sweep import read_sweep, run_sweep
+    from core.engine.text import chunk_text
+    from core.analyses.trend import trend
 
     out = Path(args.out)
     if out.exists() and not args.force:
@@ -261,14 +261,14 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 
 def cmd_train(args: argparse.Namespace) -> int:
-    from core import train
+    from core.training import train
 
     return train.run_from_args(args) or 0
 
 
 def add_sweep_arguments(p: argparse.ArgumentParser, noise_choices=None) -> None:
-    from core.latent import NOISE_MODELS
-    from core.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED
+    from core.engine.noise import NOISE_MODELS
+    from core.engine.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED
 
     p.add_argument("--text", help="UTF-8 text file to evaluate on (default: the bundled demo text)")
     p.add_argument("--sigmas", help="grid as start:stop:step or a comma list (default: 0 and 24 steps from 0.01 to 2, x1.26 each)")
@@ -303,7 +303,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_sweep)
 
     try:
-        from core import train
+        from core.training import train
     except ImportError:
         train = None
     if train is not None and hasattr(train, "add_arguments"):

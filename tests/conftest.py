@@ -13,11 +13,11 @@ import numpy as np
 import pytest
 import torch
 
-from core.checkpoint import Codec, save_codec
+from core.codecs.checkpoint import Codec, save_codec
 
 torch.set_num_threads(1)  # the tensors here are small; one thread avoids thread-pool contention on shared machines
-from core.model import ChunkMLPConfig, build_model
-from core.tokenizer import token_byte_lengths, train_byte_bpe
+from core.codecs.model import ChunkMLPConfig, build_model
+from core.codecs.tokenizer import token_byte_lengths, train_byte_bpe
 
 FIXTURE_TEXT = (
     "The valley line climbs 412 metres in 9.5 km; on the steepest stretch the gradient is 1:28.\n"

@@ -18,9 +18,9 @@ pytest.importorskip("pytestqt")
 from app.main import make_settings, run_workbench  # noqa: E402
 from app.state import sample_paths  # noqa: E402
 from app.window import MainWindow  # noqa: E402
-from core.checkpoint import load_codec  # noqa: E402
+from core.codecs.checkpoint import load_codec  # noqa: E402
 from core.errors import CheckpointError  # noqa: E402
-from core.live import perturb_once  # noqa: E402
+from core.analyses.live import perturb_once  # noqa: E402
 
 WAIT = 60_000  # ms; generous for a loaded CI machine, a healthy run takes a fraction
 

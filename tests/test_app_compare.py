@@ -13,13 +13,13 @@ import torch
 from PySide6.QtGui import QColor, QImage, QTextCursor
 
 from conftest import FIXTURE_TEXT, LookupCodec
-from core.checkpoint import Codec, save_codec
-from core.compare import compare_codecs
+from core.codecs.checkpoint import Codec, save_codec
+from core.analyses.compare import compare_codecs
 from core.errors import ChunkscopeError
-from core.model import ChunkMLPConfig, build_model
-from core.sweep import SweepSettings, run_sweep
-from core.text import chunk_text
-from core.tokenizer import train_byte_bpe
+from core.codecs.model import ChunkMLPConfig, build_model
+from core.engine.sweep import SweepSettings, run_sweep
+from core.engine.text import chunk_text
+from core.codecs.tokenizer import train_byte_bpe
 
 GRID = (0.0, 0.3, 0.6, 1.0, 1.6)
 

@@ -16,9 +16,9 @@ import app.state  # noqa: E402
 from app.main import make_settings  # noqa: E402
 from app.state import sample_paths  # noqa: E402
 from app.window import VIEWS, MainWindow  # noqa: E402
-from core.checkpoint import load_codec  # noqa: E402
-from core.sweep import SweepSettings, run_sweep  # noqa: E402
-from core.text import chunk_text  # noqa: E402
+from core.codecs.checkpoint import load_codec  # noqa: E402
+from core.engine.sweep import SweepSettings, run_sweep  # noqa: E402
+from core.engine.text import chunk_text  # noqa: E402
 
 WAIT = 60_000
 TINY = {"start": 0.05, "stop": 1.0, "points": 3, "spacing": "log", "zero": True, "repeats": 1, "noise": "data-scale",

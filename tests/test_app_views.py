@@ -1,18 +1,18 @@
-"""core.views: what the workbench shows beyond core's results, checked against core itself."""
+"""core.analyses.views: what the workbench shows beyond core's results, checked against core itself."""
 
 import numpy as np
 import pytest
 import torch
 
-from core.checkpoint import Codec
+from core.codecs.checkpoint import Codec
 from core.errors import SettingsError
-from core.latent import encode_chunks
-from core.live import perturb_once
-from core.model import ChunkMLPConfig, build_model
-from core.text import chunk_text, demo_text
-from core.tokenizer import train_byte_bpe
-from core.tokenizer import token_display
-from core.views import (
+from core.engine.noise import encode_chunks
+from core.analyses.live import perturb_once
+from core.codecs.model import ChunkMLPConfig, build_model
+from core.engine.text import chunk_text, demo_text
+from core.codecs.tokenizer import train_byte_bpe
+from core.codecs.tokenizer import token_display
+from core.analyses.views import (
     critical_sigma_levels, decoded_layout, merge_windows, perturb_window, remaining_ranges, sigma_grid, token_at,
 )
 
@@ -30,7 +30,7 @@ def setup():
 
 @pytest.mark.parametrize("start, stop", [(300, 310), (250, 530), (0, 256), (17, 18)])
 def test_windows_merge_into_the_engines_whole_text_perturbation(setup, start, stop):
-    """The reference is core.live.perturb_once over the whole text with the same noise; the
+    """The reference is core.analyses.live.perturb_once over the whole text with the same noise; the
     on-screen window may start and end anywhere, also across noise blocks of 256 chunks."""
     codec, chunks, encoded = setup
     n = encoded.num_chunks

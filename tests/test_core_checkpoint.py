@@ -10,7 +10,7 @@ import pytest
 import torch
 from safetensors.torch import save_file
 
-from core.checkpoint import KEY_CARD, KEY_CONFIG, KEY_FORMAT, KEY_TOKENIZER, Codec, load_codec, save_codec
+from core.codecs.checkpoint import KEY_CARD, KEY_CONFIG, KEY_FORMAT, KEY_TOKENIZER, Codec, load_codec, save_codec
 from core.errors import CheckpointError
 
 
@@ -143,7 +143,7 @@ def test_non_finite_weights(tmp_path, small_codec):
 
 
 def test_tokenizer_vocabulary_mismatch(tmp_path, small_codec):
-    from core.tokenizer import train_byte_bpe
+    from core.codecs.tokenizer import train_byte_bpe
 
     tensors, metadata = _tensors_and_metadata(small_codec)
     metadata[KEY_TOKENIZER] = train_byte_bpe(["a different and much smaller corpus"], 270).to_str()
@@ -161,7 +161,7 @@ def test_missing_file(tmp_path):
 
 
 def test_header_info_is_read_without_the_weights(tmp_path, small_codec):
-    from core.checkpoint import read_checkpoint_info
+    from core.codecs.checkpoint import read_checkpoint_info
 
     path = tmp_path / "h.safetensors"
     save_codec(Codec(small_codec.model, small_codec.tokenizer, card={"note": "header"}), path)
@@ -179,7 +179,7 @@ def test_header_info_is_read_without_the_weights(tmp_path, small_codec):
 
 def test_core_and_the_window_import_without_torch():
     # torch (about 2.5 s to import) loads in the first background task, after the window is up
-    code = ("import sys, core, core.checkpoint, core.sweep, core.views, app.window, app.main; "
+    code = ("import sys, core, core.codecs.checkpoint, core.engine.sweep, core.analyses.views, app.window, app.main; "
             "print('torch' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
                          env={**os.environ, "QT_QPA_PLATFORM": "offscreen"})

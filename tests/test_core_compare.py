@@ -8,16 +8,16 @@ import pytest
 import torch
 
 from conftest import LookupCodec
-from core.checkpoint import Codec, save_codec
-from core.compare import character_correctness, compare_codecs, mcnemar, paired_comparison, read_comparison, scale_warning
+from core.codecs.checkpoint import Codec, save_codec
+from core.analyses.compare import character_correctness, compare_codecs, mcnemar, paired_comparison, read_comparison, scale_warning
 from core.errors import ChunkscopeError
-from core.model import ChunkMLPConfig, build_model
-from core.report import build_report
-from core.sweep import SweepSettings, run_sweep
-from core.text import chunk_text
-from core.tokenizer import train_byte_bpe
-from core.trend import step_from_name, trend
-from core.workspace import Workspace, load_workspace, save_workspace
+from core.codecs.model import ChunkMLPConfig, build_model
+from core.outputs.report import build_report
+from core.engine.sweep import SweepSettings, run_sweep
+from core.engine.text import chunk_text
+from core.codecs.tokenizer import train_byte_bpe
+from core.analyses.trend import step_from_name, trend
+from core.outputs.workspace import Workspace, load_workspace, save_workspace
 
 GRID = (0.0, 0.2, 0.4, 0.8, 1.2)
 

@@ -4,9 +4,9 @@ import pytest
 import torch
 from scipy import stats
 
-from core.health import ACTIVE_THRESHOLD, kl_to_standard_normal, nearest_distinct_half_distance
-from core.latent import NOISE_BLOCK, draw_eps
-from core.metrics import SigmaAccumulator, ece_bin_index, score_logits, wilson_interval
+from core.engine.health import ACTIVE_THRESHOLD, kl_to_standard_normal, nearest_distinct_half_distance
+from core.engine.noise import NOISE_BLOCK, draw_eps
+from core.engine.metrics import SigmaAccumulator, ece_bin_index, score_logits, wilson_interval
 
 
 @pytest.mark.parametrize("successes,n", [(0, 10), (3, 10), (10, 10), (997, 1000), (12345, 12400), (1, 1)])

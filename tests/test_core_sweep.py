@@ -12,8 +12,8 @@ import torch
 
 from conftest import LookupCodec
 from core.errors import SettingsError, SweepCancelled
-from core.sweep import SweepSettings, critical_sigmas, parse_sigmas, read_sweep, run_sweep, tolerance_at
-from core.text import chunk_text
+from core.engine.sweep import SweepSettings, critical_sigmas, parse_sigmas, read_sweep, run_sweep, tolerance_at
+from core.engine.text import chunk_text
 
 GRID = (0.0, 0.05, 0.1, 0.15, 0.2, 0.3, 0.4, 0.6, 0.8, 1.0, 1.5, 2.0)
 
@@ -201,15 +201,15 @@ def test_parse_sigmas():
 
 
 def test_core_imports_no_qt():
-    code = "import sys, core, core.sweep, core.health, core.live, core.tokens, core.cli; print([m for m in sys.modules if m.split('.')[0] in ('PySide6', 'pyqtgraph', 'superqt', 'shiboken6')])"
+    code = "import sys, core, core.engine.sweep, core.engine.health, core.analyses.live, core.analyses.tokens, core.cli; print([m for m in sys.modules if m.split('.')[0] in ('PySide6', 'pyqtgraph', 'superqt', 'shiboken6')])"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]"
 
 
 def test_live_paths_agree_with_the_sweep(lookup_codec, fixture_text):
     # the live view at a grid sigma shows the sweep's repeat 0, token for token
-    from core.latent import encode_chunks
-    from core.live import perturb_once
+    from core.engine.noise import encode_chunks
+    from core.analyses.live import perturb_once
 
     chunks = chunk_text(fixture_text, lookup_codec)
     encoded = encode_chunks(lookup_codec, chunks)

@@ -3,8 +3,8 @@
 import pytest
 
 from core.errors import TextError
-from core.text import chunk_text, load_text
-from core.tokenizer import decode_ids, encode_with_spans
+from core.engine.text import chunk_text, load_text
+from core.codecs.tokenizer import decode_ids, encode_with_spans
 
 SAMPLES = [
     "Plain ASCII, with numbers 12.5 and 1:28.",

@@ -7,10 +7,10 @@ from pathlib import Path
 
 import pytest
 
-from core.checkpoint import Codec, load_codec
-from core.sweep import SweepSettings, run_sweep
-from core.text import chunk_text, demo_text
-from core.train import RECIPES, Recipe, prefix_chunks
+from core.codecs.checkpoint import Codec, load_codec
+from core.engine.sweep import SweepSettings, run_sweep
+from core.engine.text import chunk_text, demo_text
+from core.training.train import RECIPES, Recipe, prefix_chunks
 
 SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_models"
 NAMES = sorted(RECIPES)

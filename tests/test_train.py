@@ -8,10 +8,10 @@ from dataclasses import replace
 import pytest
 import torch
 
-from core.checkpoint import load_codec
-from core.corpus import Corpus, CorpusInfo, file_text, is_held_out
-from core.tokenizer import train_byte_bpe
-from core.train import RECIPES, Recipe, add_arguments, train
+from core.codecs.checkpoint import load_codec
+from core.training.corpus import Corpus, CorpusInfo, file_text, is_held_out
+from core.codecs.tokenizer import train_byte_bpe
+from core.training.train import RECIPES, Recipe, add_arguments, train
 
 TEXTS = [
     "Return the sum of two numbers.\nRaise ValueError when the input is empty.\n",

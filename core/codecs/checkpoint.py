@@ -17,11 +17,11 @@ from typing import Any
 from safetensors import safe_open
 from tokenizers import Tokenizer
 
-from core.arch import ARCHITECTURES, ChunkMLPConfig
+from core.codecs.arch import ARCHITECTURES, ChunkMLPConfig
 from core.deferred import inference_mode, torch
 from core.errors import CheckpointError
-from core.files import staged_file
-from core.tokenizer import token_byte_lengths
+from core.outputs.files import staged_file
+from core.codecs.tokenizer import token_byte_lengths
 
 FORMAT_VERSION = 1
 KEY_FORMAT = "chunkscope.format"
@@ -45,7 +45,7 @@ def file_sha256(path: str | os.PathLike) -> str:
 class Codec:
     """An encoder + decoder + tokenizer, seen through the codec contract of DESIGN.md."""
 
-    model: Any  # core.model.ChunkMLP (imported with torch, on first load)
+    model: Any  # core.codecs.model.ChunkMLP (imported with torch, on first load)
     tokenizer: Tokenizer
     card: dict[str, Any] = field(default_factory=dict)
     sha256: str = ""
@@ -245,7 +245,7 @@ def load_codec(path: str | os.PathLike) -> Codec:
             f"{name} has a tokenizer of {tokenizer.get_vocab_size()} tokens but a model vocabulary of {config.vocab_size}."
         )
 
-    from core.model import build_model
+    from core.codecs.model import build_model
 
     model = build_model(config)
     expected = model.state_dict()

@@ -1,8 +1,8 @@
 """What the workbench's views need beyond the engine's results, computed without Qt.
 
 The live view decodes the part of the text on screen first and the rest after, so a
-slider move shows up quickly; both parts use the sweep's ε (core.latent.draw_eps), and
-merging them gives exactly what `core.live.perturb_once` gives for the whole text.
+slider move shows up quickly; both parts use the sweep's ε (core.engine.noise.draw_eps), and
+merging them gives exactly what `core.analyses.live.perturb_once` gives for the whole text.
 """
 
 from __future__ import annotations
@@ -15,11 +15,29 @@ import numpy as np
 
 from core.deferred import inference_mode, torch
 from core.errors import SettingsError
-from core.latent import NOISE_BLOCK, Encoded, check_noise, draw_eps, noise_scale
-from core.live import LivePerturbation
-from core.metrics import log_partition
-from core.text import Chunks
-from core.tokenizer import display_table, token_display
+from core.engine.noise import NOISE_BLOCK, Encoded, check_noise, draw_eps, noise_scale
+from core.engine.metrics import log_partition
+from core.engine.text import Chunks
+from core.codecs.tokenizer import display_table, token_display
+
+
+@dataclass
+class LivePerturbation:
+    sigma: float
+    noise: str
+    seed: int
+    draw: int
+    predicted: np.ndarray  # [T] decoded token ids
+    correct: np.ndarray  # [T] bool
+    top_ids: np.ndarray  # [T, top_k]
+    top_probs: np.ndarray  # [T, top_k]
+    token_accuracy: float
+    chunk_exact_rate: float
+    tokens: int
+    chunks: int
+
+    def wrong_indices(self) -> np.ndarray:
+        return np.flatnonzero(~self.correct)
 
 
 @dataclass

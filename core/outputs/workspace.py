@@ -17,12 +17,12 @@ from pathlib import Path
 from typing import Any
 
 import core
-from core.checkpoint import file_sha256
-from core.compare import Comparison, read_comparison
+from core.codecs.checkpoint import file_sha256
+from core.analyses.compare import Comparison, read_comparison
 from core.errors import ChunkscopeError
-from core.files import refuse_existing, staged_file
-from core.sweep import SweepResult, read_sweep
-from core.trend import TrendPoint
+from core.outputs.files import refuse_existing, staged_file
+from core.engine.sweep import SweepResult, read_sweep
+from core.analyses.trend import TrendPoint
 
 WORKSPACE_FORMAT = 1
 WORKSPACE_SUFFIX = ".chunkscope"

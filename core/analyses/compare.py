@@ -19,10 +19,10 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from core.errors import ChunkscopeError
-from core.files import staged_folder
-from core.latent import encode_chunks
-from core.sweep import DEFAULT_SIGMAS, SweepResult, SweepSettings, read_sweep, run_sweep
-from core.text import chunk_text
+from core.outputs.files import staged_folder
+from core.engine.noise import encode_chunks
+from core.engine.sweep import DEFAULT_SIGMAS, SweepResult, SweepSettings, read_sweep, run_sweep
+from core.engine.text import chunk_text
 
 EXACT_BELOW = 25
 SCALE_WARNING_RATIO = 1.5

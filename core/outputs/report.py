@@ -12,11 +12,11 @@ from html import escape
 from typing import Sequence
 
 import core
-from core.compare import Comparison
-from core.svgplot import Chart, Marker, Series, render
-from core.sweep import SweepResult, tolerance_text
-from core.tokens import fragile_types
-from core.trend import TrendPoint, sort_points
+from core.analyses.compare import Comparison
+from core.outputs.svgplot import Chart, Marker, Series, render
+from core.engine.sweep import SweepResult, tolerance_text
+from core.analyses.tokens import fragile_types
+from core.analyses.trend import TrendPoint, sort_points
 
 STYLE = """
 body{font-family:"DejaVu Sans",Helvetica,Arial,sans-serif;color:#22262b;margin:28px auto;max-width:980px;line-height:1.45;font-size:14px}

@@ -6,7 +6,7 @@ log-std head when variational). Decoder: latent -> trunk width, residual blocks,
 projection to K slot vectors, and logits through the (tied) token embedding.
 
 Training-only regularisers (latent dropout, input-token masking, the posterior sample)
-live in `core.train`; this module is the deterministic function the tool inspects.
+live in `core.training.train`; this module is the deterministic function the tool inspects.
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ from __future__ import annotations
 import torch
 from torch import nn
 
-from core.arch import ARCHITECTURES, ChunkMLPConfig
+from core.codecs.arch import ARCHITECTURES, ChunkMLPConfig
 
 
 class ResidualBlock(nn.Module):

@@ -8,8 +8,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from core.deferred import torch
-from core.latent import Encoded, encode_chunks
-from core.text import Chunks
+from core.engine.noise import Encoded, encode_chunks
+from core.engine.text import Chunks
 
 ACTIVE_THRESHOLD = 0.01  # variance of the mean over chunks; common practice (importance-weighted AE literature)
 

@@ -4,31 +4,9 @@ grid sigma shows exactly the sweep's repeat."""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
-import numpy as np
-
-from core.latent import Encoded
-from core.text import Chunks
-
-
-@dataclass
-class LivePerturbation:
-    sigma: float
-    noise: str
-    seed: int
-    draw: int
-    predicted: np.ndarray  # [T] decoded token ids
-    correct: np.ndarray  # [T] bool
-    top_ids: np.ndarray  # [T, top_k]
-    top_probs: np.ndarray  # [T, top_k]
-    token_accuracy: float
-    chunk_exact_rate: float
-    tokens: int
-    chunks: int
-
-    def wrong_indices(self) -> np.ndarray:
-        return np.flatnonzero(~self.correct)
+from core.analyses.views import LivePerturbation, merge_windows, perturb_window
+from core.engine.noise import Encoded
+from core.engine.text import Chunks
 
 
 def perturb_once(
@@ -42,7 +20,5 @@ def perturb_once(
     top_k: int = 5,
     should_stop=None,
 ) -> LivePerturbation | None:
-    from core.views import merge_windows, perturb_window  # views builds on this module's result type
-
     window = perturb_window(codec, chunks, encoded, sigma, noise, seed, draw, 0, encoded.num_chunks, top_k, should_stop)
     return None if window is None else merge_windows(chunks, [window])

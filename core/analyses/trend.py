@@ -7,10 +7,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Iterator
 
-from core.checkpoint import load_codec
+from core.codecs.checkpoint import load_codec
 from core.errors import ChunkscopeError, SweepCancelled
-from core.sweep import SweepResult, SweepSettings, run_sweep
-from core.text import chunk_text
+from core.engine.sweep import SweepResult, SweepSettings, run_sweep
+from core.engine.text import chunk_text
 
 STEP_KEYS = ("step", "steps_done", "global_step", "steps")
 _STEP_IN_NAME = re.compile(r"(?:step|iter|it|ckpt|checkpoint)?[-_ ]?(\d+)(?!.*\d)", re.IGNORECASE)

@@ -7,7 +7,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from core.tokenizer import token_display
+from core.codecs.tokenizer import token_display
 
 
 @dataclass

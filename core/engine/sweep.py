@@ -24,11 +24,11 @@ import numpy as np
 import core
 from core.deferred import torch
 from core.errors import SettingsError, SweepCancelled
-from core.files import staged_folder
-from core.latent import NOISE_BLOCK, NOISE_MODELS, Encoded, Progress, ShouldStop, check_noise, draw_eps, encode_chunks, noise_scale
-from core.metrics import SigmaAccumulator, SigmaMetrics, frequency_buckets
-from core.text import Chunks
-from core.tokenizer import token_display
+from core.outputs.files import staged_folder
+from core.engine.noise import NOISE_BLOCK, NOISE_MODELS, Encoded, Progress, ShouldStop, check_noise, draw_eps, encode_chunks, noise_scale
+from core.engine.metrics import SigmaAccumulator, SigmaMetrics, frequency_buckets
+from core.engine.text import Chunks
+from core.codecs.tokenizer import token_display
 
 TOLERANCE_LEVELS = (0.999, 0.99, 0.9)
 DEFAULT_NOISE = "data-scale"

@@ -1,6 +1,6 @@
 """The reference architecture's configuration: what a checkpoint's config JSON holds.
 
-Kept apart from `core.model` so reading a checkpoint's header needs no torch.
+Kept apart from `core.codecs.model` so reading a checkpoint's header needs no torch.
 """
 
 from __future__ import annotations

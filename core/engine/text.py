@@ -11,9 +11,9 @@ import numpy as np
 
 from core.deferred import torch
 from core.errors import TextError
-from core.tokenizer import encode_with_spans
+from core.codecs.tokenizer import encode_with_spans
 
-DEMO_TEXT_PATH = Path(__file__).resolve().parent.parent / "sample_models" / "demo_text.txt"
+DEMO_TEXT_PATH = Path(__file__).resolve().parents[2] / "sample_models" / "demo_text.txt"
 
 
 def text_sha256(text: str) -> str:

@@ -1,6 +1,6 @@
 """The training recipe for chunk-mlp codecs, and the recipes of the shipped sample models.
 
-Data: the standard library's docstrings and comments (`core.corpus`), tokenized with one
+Data: the standard library's docstrings and comments (`core.training.corpus`), tokenized with one
 byte-level BPE trained once on the training split, so every sample model shares the
 same tokenizer. Training chunks are K-token windows at random offsets of the training
 token stream (a few get a padded tail, as the last chunk of any text does).
@@ -33,11 +33,11 @@ import numpy as np
 import torch
 from torch import nn
 
-from core.checkpoint import Codec, save_codec
-from core.corpus import Corpus, build_corpus
-from core.model import ChunkMLP, ChunkMLPConfig, build_model
-from core.text import Chunks, chunk_text, demo_text, text_sha256
-from core.tokenizer import MASK_TOKEN, PAD_TOKEN, train_byte_bpe
+from core.codecs.checkpoint import Codec, save_codec
+from core.training.corpus import Corpus, build_corpus
+from core.codecs.model import ChunkMLP, ChunkMLPConfig, build_model
+from core.engine.text import Chunks, chunk_text, demo_text, text_sha256
+from core.codecs.tokenizer import MASK_TOKEN, PAD_TOKEN, train_byte_bpe
 
 Log = Callable[[str], None]
 
@@ -254,7 +254,7 @@ def _tolerances_dict(result) -> dict[str, dict]:
 def measure(codec: Codec, held_out_text: str, log: Log = print, sweep_tokens: int = SWEEP_TOKENS,
             repeats: int = SWEEP_REPEATS, held_out_tokens: int = HELD_OUT_TOKENS) -> dict[str, Any]:
     """The card's measured numbers: sigma-0 accuracy on held-out and demo text, tolerances, latent RMS."""
-    from core.sweep import SweepSettings, run_sweep
+    from core.engine.sweep import SweepSettings, run_sweep
 
     measured: dict[str, Any] = {}
     held = prefix_chunks(codec, held_out_text, held_out_tokens)
@@ -436,7 +436,7 @@ def _override(recipe: Recipe, args: argparse.Namespace) -> Recipe:
 
 def card_table(folder: str | Path) -> str:
     """A Markdown table of what each checkpoint's card says it is and measured."""
-    from core.checkpoint import load_codec
+    from core.codecs.checkpoint import load_codec
 
     def tol(t: dict) -> str:
         return "fails at 0" if t["sigma"] is None else f"{t['sigma']:.3g}" + ("+" if t["status"] == "above_grid" else "")
@@ -479,7 +479,7 @@ def run_from_args(args: argparse.Namespace) -> int:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m core.train", description="Train chunk-mlp codecs.")
+    parser = argparse.ArgumentParser(prog="python -m core.training.train", description="Train chunk-mlp codecs.")
     add_arguments(parser)
     return run_from_args(parser.parse_args(argv))
 

@@ -1,0 +1,1 @@
+"""Analyses over sweeps: compare, training-run trend, token views, the live view."""

@@ -1,0 +1,1 @@
+"""The codec contract, the built-in checkpoint format, its architecture and tokenizers."""

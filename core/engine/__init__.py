@@ -1,0 +1,1 @@
+"""The measuring engine: text and chunks, noise, streaming metrics, the sweep, latent health."""

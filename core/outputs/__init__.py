@@ -1,0 +1,1 @@
+"""What the tool writes: atomic files, the HTML report, the workspace."""

@@ -1,0 +1,1 @@
+"""The sample models' training corpus and recipe, kept apart from the engine."""
