@@ -23,6 +23,7 @@ from app.plotaxes import use_sigma_axis
 from app.style import PALETTE, faded, fmt_percent, legend, pen, plot_widget
 from app.tokentext import TokenText, char_format
 from app.workers import Runner, Task
+from core.codecs.contract import opened
 from core.analyses.compare import Comparison, compare_codecs, unit_correctness
 from core.errors import SettingsError
 from core.outputs.report import provenance_caption
@@ -349,7 +350,7 @@ class ComparePanel(QWidget):
         ticked = {self._codec_key(c) for c in self.selected_codecs()} if self.codecs else None
         known = {self._codec_key(c) for c in self.codecs}  # a newly loaded checkpoint arrives ticked
         reference = self.reference.currentText()
-        self.codecs = list(codecs)
+        self.codecs = [opened(c) for c in codecs]
         self.text, self.text_source = text, text_source
         self.picker.blockSignals(True)
         self.reference.blockSignals(True)

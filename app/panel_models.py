@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import html
-import json
 from pathlib import Path
 
 from PySide6.QtCore import QSize, Qt, Signal
@@ -13,16 +12,14 @@ from PySide6.QtWidgets import (
 )
 
 from app.state import Entry, Workbench
+from core.codecs.summary import card_rows, codec_rows, header_rows, short_summary
 from app.style import PALETTE
 
 
 def _entry_summary(entry: Entry) -> tuple[str, str]:
     if entry.codec is None and entry.info is None:
         return entry.name, "opening…"
-    c = entry.codec.config if entry.codec is not None else entry.info.config
-    kind = "variational" if c.variational else "plain"
-    last = entry.codec.sha256[:8] if entry.codec is not None else "loading weights…"
-    return entry.name, f"{kind} · K {c.chunk_size} · D {c.latent_dim} · {last}"
+    return entry.name, short_summary(entry.codec, entry.info)
 
 
 class ElidedLabel(QLabel):
@@ -320,36 +317,10 @@ class ModelsPanel(QWidget):
             self.details.set_message(f"Opening {Path(entry.path).name}…")
             return
         codec = entry.codec
-        c = codec.config if codec is not None else entry.info.config
         card = codec.card if codec is not None else entry.info.card
-        rows = [
-            ("file", Path(entry.path).name),
-            ("architecture", f"{c.arch}, {'variational' if c.variational else 'plain'} autoencoder"),
-            ("chunk size K", c.chunk_size),
-            ("latent dim D", c.latent_dim),
-            ("vocabulary", f"{c.vocab_size:,}"),
-            ("embed / width / depth", f"{c.embed_dim} / {c.width} / {c.depth}"),
-            ("parameters", f"{codec.num_parameters:,}" if codec is not None else "loading weights…"),
-            ("sha256", codec.sha256 if codec is not None else "loading weights…"),
-        ]
+        rows = codec_rows(codec) if codec is not None else header_rows(entry.info)
         rows.append(("latent RMS", f"{entry.encoded.latent_rms:.4g}" if entry.encoded is not None else "encoding…"))
-        card_rows = self._flatten(card) if card else []
-        self.details.set_sections([("", rows, "", False), ("CARD", card_rows, "This checkpoint carries no card.", True)])
-
-    @staticmethod
-    def _flatten(card: dict, prefix: str = "") -> list[tuple[str, object]]:
-        rows: list[tuple[str, object]] = []
-        for key, value in card.items():
-            name = f"{prefix}{key}"
-            if isinstance(value, dict) and len(rows) < 80:
-                rows.extend(ModelsPanel._flatten(value, name + "."))
-            elif isinstance(value, float):
-                rows.append((name, f"{value:.4g}"))
-            elif isinstance(value, list):
-                rows.append((name, json.dumps(value)))
-            else:
-                rows.append((name, value))
-        return rows
+        self.details.set_sections([("", rows, "", False), ("CARD", card_rows(card) if card else [], "This checkpoint carries no card.", True)])
 
     def sizeHint(self) -> QSize:  # noqa: N802 (Qt naming)
         return QSize(300, 600)

@@ -10,7 +10,8 @@ from pathlib import Path
 
 from PySide6.QtCore import QObject, Signal
 
-from core.codecs.checkpoint import CheckpointInfo, Codec, load_codec, read_checkpoint_info
+from core.codecs.checkpoint import CheckpointInfo, load_codec, read_checkpoint_info
+from core.codecs.contract import OpenedCodec
 from core.errors import CheckpointError, TextError
 from core.engine.health import LatentHealth, latent_health
 from core.engine.noise import Encoded, encode_chunks
@@ -44,7 +45,7 @@ class Entry:
     """One opened checkpoint and what has been computed for it on the current text."""
 
     path: str
-    codec: Codec | None = None
+    codec: OpenedCodec | None = None
     info: CheckpointInfo | None = None  # the header, read at once when opened (the weights load in a task)
     error: str = ""
     text_sha: str = ""
@@ -72,16 +73,16 @@ def _load_and_encode(task: Task, path: str, text: str, source: str):
     return codec, chunks, encoded
 
 
-def _encode(task: Task, codec: Codec, text: str, source: str):
+def _encode(task: Task, codec: OpenedCodec, text: str, source: str):
     chunks = chunk_text(text, codec, source)
     return chunks, encode_chunks(codec, chunks, should_stop=task.should_stop)
 
 
-def _health(task: Task, codec: Codec, chunks: Chunks, encoded: Encoded):
+def _health(task: Task, codec: OpenedCodec, chunks: Chunks, encoded: Encoded):
     return latent_health(codec, chunks, encoded=encoded, should_stop=task.should_stop)
 
 
-def _sweep(task: Task, codec: Codec, chunks: Chunks, encoded: Encoded, settings: SweepSettings, source: str):
+def _sweep(task: Task, codec: OpenedCodec, chunks: Chunks, encoded: Encoded, settings: SweepSettings, source: str):
     return run_sweep(codec, chunks, settings, progress=task.report, should_stop=task.should_stop,
                      encoded=encoded, text_source=source)
 

@@ -65,17 +65,15 @@ def cmd_info(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps({"codec": codec.describe(), "health": health.summary(), "text": source}, indent=1))
         return 0
-    c = codec.config
-    print(f"{codec.name}  ({Path(codec.path).name})")
-    print(f"  architecture   {c.arch}, {'variational' if c.variational else 'plain'} autoencoder")
-    print(f"  sizes          chunk K={c.chunk_size}, latent D={c.latent_dim}, vocab V={c.vocab_size}, "
-          f"embed {c.embed_dim}, width {c.width}, depth {c.depth}, pad id {c.pad_id}")
-    print(f"  parameters     {codec.num_parameters:,}")
-    print(f"  sha256         {codec.sha256}")
+    from core.codecs.summary import codec_rows
+
+    print(codec.name)
+    for label, value in codec_rows(codec):
+        print(f"  {label:<26} {value}")
     print(f"latent health on {source} ({chunks.num_tokens:,} tokens, {chunks.num_chunks:,} chunks)")
     s = health.summary()
     print(f"  latent RMS     {s['latent_rms']:.4g}")
-    print(f"  active dims    {s['active_dims']} of {c.latent_dim} (variance of the mean > {s['active_threshold']})")
+    print(f"  active dims    {s['active_dims']} of {codec.latent_dim} (variance of the mean > {s['active_threshold']})")
     if "kl_total" in s:
         print(f"  KL to N(0,I)   {s['kl_total']:.4g} nats per chunk; mean posterior std {s['posterior_std_mean']:.4g}")
     print(f"  nearest-neighbour half-distance  median {_fmt(s['nn_half_distance_median'])}, "

@@ -5,7 +5,6 @@ window on the shipped samples per GUI test module."""
 from __future__ import annotations
 
 import os
-from types import SimpleNamespace
 
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 
@@ -17,7 +16,7 @@ from core.codecs.checkpoint import Codec, save_codec
 
 torch.set_num_threads(1)  # the tensors here are small; one thread avoids thread-pool contention on shared machines
 from core.codecs.model import ChunkMLPConfig, build_model
-from core.codecs.tokenizer import token_byte_lengths, train_byte_bpe
+from core.codecs.tokenizer import train_byte_bpe
 
 FIXTURE_TEXT = (
     "The valley line climbs 412 metres in 9.5 km; on the steepest stretch the gradient is 1:28.\n"
@@ -46,7 +45,7 @@ def small_checkpoint(small_codec, tmp_path):
 
 
 class LookupCodec:
-    """A codec that meets the contract without learning: each token has a fixed random
+    """A codec that meets the contract (core.codecs.contract.ChunkCodec) and nothing more, without learning: each token has a fixed random
     vector, a chunk's latent is the concatenation, and decoding scores every token by
     negative squared distance. It reconstructs perfectly at sigma = 0 and breaks under noise."""
 
@@ -61,12 +60,7 @@ class LookupCodec:
         self.sharpness = sharpness
         self.scale = scale
         self.table = torch.randn(self.vocab_size, per_token_dim, generator=torch.Generator().manual_seed(seed))
-        self.token_byte_lengths = token_byte_lengths(tokenizer)
         self.name = "lookup"
-        self.sha256 = "0" * 64
-        self.path = ""
-        self.card = {}
-        self.config = SimpleNamespace(to_dict=lambda: {"arch": "lookup", "chunk_size": chunk_size, "pad_id": 0})
         self.decoded_latents: list[torch.Tensor] | None = None
 
     def encode(self, ids):

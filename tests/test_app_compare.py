@@ -13,6 +13,7 @@ import torch
 from PySide6.QtGui import QColor, QImage, QTextCursor
 
 from conftest import FIXTURE_TEXT, LookupCodec
+from core.codecs.contract import CodecSource, OpenedCodec
 from core.codecs.checkpoint import Codec, save_codec
 from core.analyses.compare import compare_codecs
 from core.errors import ChunkscopeError
@@ -26,9 +27,7 @@ GRID = (0.0, 0.3, 0.6, 1.0, 1.6)
 
 def _lookup(tokenizer, name, **kwargs):
     codec = LookupCodec(tokenizer, **kwargs)
-    codec.name = name
-    codec.sha256 = (name.encode().hex() + "0" * 64)[:64]
-    return codec
+    return OpenedCodec(codec, CodecSource(sha256=(name.encode().hex() + "0" * 64)[:64]), name=name)
 
 
 @pytest.fixture()

@@ -30,11 +30,11 @@ def test_round_trip_is_bit_identical(small_codec, tmp_path):
     digest = save_codec(small_codec, path)
     loaded = load_codec(path)
     assert loaded.sha256 == digest and len(digest) == 64
-    assert loaded.config == small_codec.config
+    assert loaded.codec.config == small_codec.config
     assert loaded.card == small_codec.card
     assert loaded.tokenizer.to_str() == small_codec.tokenizer.to_str()
     for key, value in small_codec.model.state_dict().items():
-        assert torch.equal(loaded.model.state_dict()[key], value), key
+        assert torch.equal(loaded.codec.model.state_dict()[key], value), key
 
 
 def test_half_precision_checkpoints_load(small_codec, tmp_path):
@@ -42,7 +42,7 @@ def test_half_precision_checkpoints_load(small_codec, tmp_path):
         path = tmp_path / f"{dtype}.safetensors"
         save_codec(small_codec, path, dtype=dtype)
         loaded = load_codec(path)
-        w = loaded.model.state_dict()["enc_in.weight"]
+        w = loaded.codec.model.state_dict()["enc_in.weight"]
         assert w.dtype == torch.float32
         assert torch.equal(w, small_codec.model.state_dict()["enc_in.weight"].to(getattr(torch, dtype)).float())
 
@@ -166,7 +166,7 @@ def test_header_info_is_read_without_the_weights(tmp_path, small_codec):
     path = tmp_path / "h.safetensors"
     save_codec(Codec(small_codec.model, small_codec.tokenizer, card={"note": "header"}), path)
     info = read_checkpoint_info(path)
-    assert info.config == load_codec(path).config
+    assert info.config == load_codec(path).codec.config
     assert info.card == {"note": "header"}
     # the same sentences as load_codec for a bad header
     tensors, metadata = _tensors_and_metadata(small_codec)

@@ -25,7 +25,7 @@ def test_info_prints_sizes_hash_card_and_health(small_checkpoint, tmp_path, caps
     text.write_text("The 06:45 left Ober-Ränk on time; the café was shut.\n" * 20, encoding="utf-8")
     assert main(["info", str(small_checkpoint), "--text", str(text)]) == 0
     out = capsys.readouterr().out
-    for word in ("chunk-mlp", "K=4", "latent D=16", "sha256", "active dims", "KL to N(0,I)", "half-distance", "test fixture"):
+    for word in ("chunk-mlp", "chunk K 4", "latent D 16", "sha256", "active dims", "KL to N(0,I)", "half-distance", "test fixture"):
         assert word in out, word
     assert main(["info", str(small_checkpoint), "--text", str(text), "--json"]) == 0
     data = json.loads(capsys.readouterr().out)

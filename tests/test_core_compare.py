@@ -8,6 +8,7 @@ import pytest
 import torch
 
 from conftest import LookupCodec
+from core.codecs.contract import CodecSource, OpenedCodec
 from core.codecs.checkpoint import Codec, save_codec
 from core.analyses.compare import character_correctness, compare_codecs, mcnemar, paired_comparison, read_comparison, scale_warning
 from core.errors import ChunkscopeError
@@ -149,7 +150,8 @@ class _Collector(HTMLParser):
 
 
 def test_report_is_self_contained_and_holds_what_it_lists(tokenizer):
-    a, b = LookupCodec(tokenizer, sharpness=20.0), LookupCodec(tokenizer, sharpness=5.0)
+    a = OpenedCodec(LookupCodec(tokenizer, sharpness=20.0), CodecSource(sha256="ab" * 32))
+    b = LookupCodec(tokenizer, sharpness=5.0)
     b.name = "soft"
     comparison = compare_codecs([a, b], TwoTokenizers.text, sigmas=GRID, repeats=1)
     html = build_report(comparison=comparison, title="Lab meeting")

@@ -37,7 +37,7 @@ def test_checkpoint_loads_and_config_matches_card(name):
     assert path.stat().st_size < 10_000_000
     c = codec(name)
     recipe = Recipe(**c.card["recipe"])
-    assert c.config == recipe.model_config(pad_id=c.pad_id)
+    assert c.codec.config == recipe.model_config(pad_id=c.pad_id)
     assert c.chunk_size == 4
     assert c.card["why"] and c.card["measured"]
 

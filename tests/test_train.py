@@ -62,7 +62,7 @@ def test_short_run_gives_loadable_checkpoint_with_full_card(tmp_path, shared):
     for noise in ("isotropic", "data-scale"):
         assert set(measured["tolerance"][noise]) == {"0.999", "0.99", "0.9"}
     assert measured["latent_rms"] > 0
-    assert codec.config.latent_dim == TINY.latent_dim and codec.variational
+    assert codec.codec.config.latent_dim == TINY.latent_dim and codec.variational
     assert any("step" in line and "loss" in line for line in lines)
 
 

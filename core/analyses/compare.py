@@ -18,6 +18,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
+from core.codecs.contract import opened
 from core.errors import ChunkscopeError
 from core.outputs.files import staged_folder
 from core.engine.noise import encode_chunks
@@ -248,6 +249,7 @@ def compare_codecs(
     on_sweep: Callable[[str, SweepResult], None] | None = None,
 ) -> Comparison:
     """Sweep every codec under data-scale and isotropic noise on the same text and seed."""
+    codecs = [opened(c) for c in codecs]
     if len(codecs) < 2:
         raise ChunkscopeError("a comparison needs at least two checkpoints.")
     if main_noise not in ("data-scale", "isotropic"):

@@ -13,6 +13,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 
+from core.codecs.contract import opened
 from core.deferred import inference_mode, torch
 from core.errors import SettingsError
 from core.engine.noise import NOISE_BLOCK, Encoded, check_noise, draw_eps, noise_scale
@@ -78,6 +79,7 @@ def perturb_window(
     Any range gives the same result as the same chunks inside a larger range (ε comes
     from draw_eps). With top_k=0 only the argmax is taken (the quickest answer for the
     screen); top_ids and top_probs are then empty [n, 0] arrays."""
+    codec = opened(codec)
     check_noise(noise, codec)
     n, k, dim = encoded.num_chunks, codec.chunk_size, codec.latent_dim
     chunk_start, chunk_stop = max(0, min(chunk_start, n)), max(0, min(chunk_stop, n))

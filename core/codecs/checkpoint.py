@@ -18,10 +18,10 @@ from safetensors import safe_open
 from tokenizers import Tokenizer
 
 from core.codecs.arch import ARCHITECTURES, ChunkMLPConfig
-from core.deferred import inference_mode, torch
+from core.codecs.contract import CodecSource, OpenedCodec
+from core.deferred import torch
 from core.errors import CheckpointError
 from core.outputs.files import staged_file
-from core.codecs.tokenizer import token_byte_lengths
 
 FORMAT_VERSION = 1
 KEY_FORMAT = "chunkscope.format"
@@ -43,17 +43,16 @@ def file_sha256(path: str | os.PathLike) -> str:
 
 @dataclass
 class Codec:
-    """An encoder + decoder + tokenizer, seen through the codec contract of DESIGN.md."""
+    """The built-in architecture as a `ChunkCodec`: model + tokenizer (+ card).
+
+    `load_codec` opens it into an `OpenedCodec`, which adds the file's path and sha256."""
 
     model: Any  # core.codecs.model.ChunkMLP (imported with torch, on first load)
     tokenizer: Tokenizer
     card: dict[str, Any] = field(default_factory=dict)
-    sha256: str = ""
-    path: str = ""
 
     def __post_init__(self) -> None:
         self.model.eval()
-        self.token_byte_lengths = token_byte_lengths(self.tokenizer)
 
     @property
     def config(self) -> ChunkMLPConfig:
@@ -80,34 +79,32 @@ class Codec:
         return self.config.variational
 
     @property
-    def name(self) -> str:
-        return Path(self.path).stem if self.path else "unsaved"
-
-    @property
     def num_parameters(self) -> int:
         return sum(p.numel() for p in self.model.parameters())
 
-    @inference_mode
     def encode(self, ids: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor | None]:
         return self.model.encode(ids)
 
-    @inference_mode
     def decode(self, z: torch.Tensor) -> torch.Tensor:
         return self.model.decode(z)
 
     def describe(self) -> dict[str, Any]:
+        c = self.config
         return {
-            "name": self.name,
-            "path": self.path,
-            "sha256": self.sha256,
-            "config": self.config.to_dict(),
+            "architecture": c.arch,
+            "embed / width / depth": f"{c.embed_dim} / {c.width} / {c.depth}",
             "parameters": self.num_parameters,
-            "card": self.card,
         }
 
 
-def save_codec(codec: Codec, path: str | os.PathLike, dtype: str = "float32") -> str:
-    """Write a codec to one safetensors file atomically; returns the file's sha256."""
+def open_builtin(codec: Codec, path: str | os.PathLike = "", sha256: str = "") -> OpenedCodec:
+    return OpenedCodec(codec, CodecSource(path=str(path), sha256=sha256, opened_as="built-in"))
+
+
+def save_codec(codec: Codec | OpenedCodec, path: str | os.PathLike, dtype: str = "float32") -> str:
+    """Write a built-in codec to one safetensors file atomically; returns the file's sha256."""
+    if isinstance(codec, OpenedCodec):
+        codec = codec.codec
     if dtype not in SAVE_DTYPES:
         raise ValueError(f"dtype must be one of {sorted(SAVE_DTYPES)}, not {dtype!r}")
     path = Path(path)
@@ -123,9 +120,7 @@ def save_codec(codec: Codec, path: str | os.PathLike, dtype: str = "float32") ->
         metadata[KEY_CARD] = json.dumps(codec.card, sort_keys=True)
     with staged_file(path, force=True) as tmp:
         save_file(tensors, str(tmp), metadata=metadata)
-    codec.path = str(path)
-    codec.sha256 = file_sha256(path)
-    return codec.sha256
+    return file_sha256(path)
 
 
 def _read_header(path: Path) -> dict:
@@ -231,7 +226,7 @@ def read_checkpoint_info(path: str | os.PathLike) -> CheckpointInfo:
     return CheckpointInfo(path=path, config=config, card=card, header=header)
 
 
-def load_codec(path: str | os.PathLike) -> Codec:
+def load_codec(path: str | os.PathLike) -> OpenedCodec:
     """Read and validate one checkpoint file; raise CheckpointError naming any problem."""
     info = read_checkpoint_info(path)
     path, name, config, card, header, metadata = info.path, info.path.name, info.config, info.card, info.header, info.metadata
@@ -277,4 +272,4 @@ def load_codec(path: str | os.PathLike) -> Codec:
     except Exception as exc:
         raise CheckpointError(f"{name} could not be read as safetensors: {exc}.") from None
     model.load_state_dict(state)
-    return Codec(model=model, tokenizer=tokenizer, card=card, sha256=file_sha256(path), path=str(path))
+    return open_builtin(Codec(model=model, tokenizer=tokenizer, card=card), path, file_sha256(path))

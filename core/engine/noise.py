@@ -12,6 +12,7 @@ from typing import Callable
 
 import numpy as np
 
+from core.codecs.contract import opened
 from core.deferred import torch
 from core.errors import SettingsError, SweepCancelled
 
@@ -46,6 +47,7 @@ class Encoded:
 def encode_chunks(
     codec, chunks, batch: int = 4096, progress: Progress | None = None, should_stop: ShouldStop | None = None
 ) -> Encoded:
+    codec = opened(codec)
     n = chunks.num_chunks
     means, stds = [], []
     for start in range(0, n, batch):
@@ -64,7 +66,7 @@ def check_noise(noise: str, codec) -> None:
     if noise not in NOISE_MODELS:
         raise SettingsError(f"the noise model must be one of {', '.join(NOISE_MODELS)}, not {noise!r}.")
     if noise == "posterior" and not codec.variational:
-        raise SettingsError(f"posterior noise needs a variational codec, and {codec.name} is a plain autoencoder.")
+        raise SettingsError(f"posterior noise needs a variational codec, and {opened(codec).name} is a plain autoencoder.")
 
 
 def noise_scale(noise: str, encoded: Encoded, start: int, stop: int) -> torch.Tensor:

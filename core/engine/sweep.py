@@ -22,6 +22,7 @@ from typing import Any, Sequence
 import numpy as np
 
 import core
+from core.codecs.contract import opened
 from core.deferred import torch
 from core.errors import SettingsError, SweepCancelled
 from core.outputs.files import staged_folder
@@ -285,7 +286,7 @@ def provenance(codec, chunks: Chunks, settings: SweepSettings, text_source: str 
         "tool": "chunkscope",
         "version": core.__version__,
         "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-        "codec": {"name": codec.name, "sha256": codec.sha256, "path": codec.path, "config": codec.config.to_dict()},
+        "codec": {k: v for k, v in opened(codec).describe().items() if k != "card"},
         "text": {"sha256": chunks.text_sha256, "characters": len(chunks.text), "tokens": chunks.num_tokens, "source": text_source},
         "settings": settings.to_dict(),
         "torch": torch.__version__,
@@ -303,6 +304,7 @@ def run_sweep(
     text_source: str = "",
 ) -> SweepResult:
     """Sweep one codec over one text. Raises SweepCancelled (and returns nothing) if stopped."""
+    codec = opened(codec)
     settings = settings.validated(codec)
     if chunks.chunk_size != codec.chunk_size:
         raise SettingsError(f"the text was cut into chunks of {chunks.chunk_size}, but {codec.name} takes {codec.chunk_size}.")

@@ -95,8 +95,10 @@ class Chunks:
 
 def chunk_text(text: str, codec, source: str = "the text") -> Chunks:
     """Tokenize a text with the codec's tokenizer and cut it into chunks of K tokens."""
+    from core.codecs.contract import byte_lengths_of
+
     check_text(text, source)
-    ids, spans = encode_with_spans(codec.tokenizer, text, codec.token_byte_lengths)
+    ids, spans = encode_with_spans(codec.tokenizer, text, byte_lengths_of(codec.tokenizer))
     if len(ids) == 0:
         raise TextError(f"{source} gives no tokens.")
     return Chunks(
