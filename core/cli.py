@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 from pathlib import Path
 
@@ -24,6 +25,13 @@ class TerminalProgress:
         self.stream = stream or sys.stderr
         tty = hasattr(self.stream, "isatty") and self.stream.isatty()
         self.mininterval = mininterval if mininterval is not None else (0.1 if tty else 5.0)
+        self.size: dict = {}  # tqdm's own choice, except on a terminal that reports no size (tqdm would print nothing)
+        if tty:
+            try:
+                known = os.get_terminal_size(self.stream.fileno()).lines > 1
+            except (OSError, ValueError, AttributeError):
+                known = False
+            self.size = {"dynamic_ncols": True} if known else {"ncols": 80, "nrows": 24}
         self.bar = None
         self.eta_shown = False
 
@@ -38,7 +46,7 @@ class TerminalProgress:
                 self.bar.close()
             # smoothing=0: the rate is the average since the start, steadier than a moving average
             self.bar = tqdm(total=total, desc=self.label, file=self.stream, mininterval=self.mininterval, miniters=1,
-                            smoothing=0, bar_format=self._EARLY, dynamic_ncols=True, leave=True)
+                            smoothing=0, bar_format=self._EARLY, leave=True, **self.size)
             self.eta_shown = False
         if not self.eta_shown and total and done / total >= self.ETA_AFTER:
             self.bar.bar_format = self._LATER

@@ -125,6 +125,24 @@ def test_progress_bar_is_tqdm_on_stderr_and_shows_time_left_only_after_five_perc
     assert "100.0%" in seen[-1][1].err
 
 
+@pytest.mark.skipif(not hasattr(os, "openpty"), reason="needs a pseudo-terminal")
+def test_progress_bar_shows_on_a_terminal_that_reports_no_size():
+    from core.cli import TerminalProgress
+
+    master, slave = os.openpty()  # a fresh pty reports 0 x 0, as some CI runners' and containers' terminals do
+    try:
+        with open(slave, "w", closefd=False) as stream:
+            assert stream.isatty()
+            progress = TerminalProgress("sizeless", stream=stream, mininterval=0)
+            for done in range(1, 21):
+                progress(done, 20)
+        written = os.read(master, 65536).decode("utf-8", "replace")
+    finally:
+        os.close(master)
+        os.close(slave)
+    assert "sizeless" in written and "100.0%" in written and "left" in written
+
+
 # ---- helpers for the commands below ----------------------------------------------------------
 
 ARGS = ["--sigmas", "0,0.5", "--repeats", "1", "--quiet"]
