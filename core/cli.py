@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
-import time
 from pathlib import Path
 
 import core
@@ -13,32 +13,47 @@ from core.errors import ChunkscopeError, SweepCancelled
 
 
 class TerminalProgress:
-    """A one-line progress bar on stderr (plain periodic lines when stderr is not a terminal)."""
+    """A tqdm progress bar on stderr, fed by the engine's `progress(done, total)` callbacks.
 
-    def __init__(self, label: str, stream=None, width: int = 30):
+    The time left is shown only once `ETA_AFTER` of the work is done: before that, an
+    estimate from the first few batches (which include warm-up) means nothing."""
+
+    ETA_AFTER = 0.05
+
+    def __init__(self, label: str, stream=None, mininterval: float | None = None):
         self.label = label
         self.stream = stream or sys.stderr
-        self.width = width
-        self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
-        self.started = time.perf_counter()
-        self.last_shown = -1.0
+        tty = hasattr(self.stream, "isatty") and self.stream.isatty()
+        self.mininterval = mininterval if mininterval is not None else (0.1 if tty else 5.0)
+        self.size: dict = {}  # tqdm's own choice, except on a terminal that reports no size (tqdm would print nothing)
+        if tty:
+            try:
+                known = os.get_terminal_size(self.stream.fileno()).lines > 1
+            except (OSError, ValueError, AttributeError):
+                known = False
+            self.size = {"dynamic_ncols": True} if known else {"ncols": 80, "nrows": 24}
+        self.bar = None
+        self.eta_shown = False
+
+    _EARLY = "{desc} {percentage:5.1f}%|{bar}| {elapsed} elapsed"
+    _LATER = "{desc} {percentage:5.1f}%|{bar}| {elapsed} elapsed, {remaining} left"
 
     def __call__(self, done: int, total: int) -> None:
-        fraction = done / total if total else 1.0
-        now = time.perf_counter()
-        if done < total and now - self.last_shown < (0.1 if self.tty else 5.0):
-            return
-        self.last_shown = now
-        elapsed = now - self.started
-        eta = elapsed / fraction - elapsed if fraction > 0 else 0.0
-        filled = int(self.width * fraction)
-        bar = "#" * filled + "." * (self.width - filled)
-        line = f"{self.label} [{bar}] {fraction * 100:5.1f}%  {elapsed:5.1f}s elapsed, {eta:5.1f}s left"
-        if self.tty:
-            self.stream.write("\r" + line + ("\n" if done >= total else ""))
-        else:
-            self.stream.write(line + "\n")
-        self.stream.flush()
+        from tqdm import tqdm
+
+        if self.bar is None or self.bar.total != total:
+            if self.bar is not None:
+                self.bar.close()
+            # smoothing=0: the rate is the average since the start, steadier than a moving average
+            self.bar = tqdm(total=total, desc=self.label, file=self.stream, mininterval=self.mininterval, miniters=1,
+                            smoothing=0, bar_format=self._EARLY, leave=True, **self.size)
+            self.eta_shown = False
+        if not self.eta_shown and total and done / total >= self.ETA_AFTER:
+            self.bar.bar_format = self._LATER
+            self.eta_shown = True
+        self.bar.update(done - self.bar.n)
+        if done >= total:
+            self.bar.close()
 
 
 def _load_text_arg(path: str | None) -> tuple[str, str]:
@@ -92,7 +107,7 @@ def _settings_from_args(args: argparse.Namespace):
     from core.engine.sweep import SweepSettings, parse_sigmas
 
     sigmas = parse_sigmas(args.sigmas) if args.sigmas else SweepSettings().sigmas
-    return SweepSettings(sigmas=sigmas, repeats=args.repeats, noise=args.noise, seed=args.seed, batch_chunks=args.batch)
+    return SweepSettings(sigmas=sigmas, repeats=args.repeats, noise=args.noise, seed=args.seed, batch_chunks=args.batch).validated()
 
 
 def print_tolerance_table(results, stream=None) -> None:
@@ -110,32 +125,59 @@ def print_tolerance_table(results, stream=None) -> None:
         print("absolute σ depends on each codec's latent scale: compare with the latent RMS, or sweep with --noise data-scale.", file=stream)
 
 
+def _already_exist(paths: list[Path]) -> ChunkscopeError:
+    if len(paths) == 1:
+        return ChunkscopeError(f"{paths[0]} already exists; pass --force to replace it, or choose another --out.")
+    listed = ", ".join(str(p) for p in paths[:-1]) + f" and {paths[-1]}"
+    return ChunkscopeError(f"{listed} already exist; pass --force to replace them, or choose another --out.")
+
+
+def _check_outputs(targets: list[Path], force: bool, recognise, folder: bool) -> None:
+    """Before any work: each target is free or replaceable, and its folder can be written."""
+    from core.outputs.files import OutputExistsError, check_target, check_writable
+
+    existing = []
+    for target in targets:
+        try:
+            check_target(target, force, recognise, folder=folder)
+        except OutputExistsError:
+            existing.append(target)
+    if existing:
+        raise _already_exist(existing)
+    for target in targets:
+        check_writable(target)
+
+
 def cmd_sweep(args: argparse.Namespace) -> int:
     from core.codecs.checkpoint import load_codec
-    from core.engine.sweep import run_sweep
+    from core.engine.sweep import SWEEP_FOLDER, run_sweep
     from core.engine.text import chunk_text
+    from core.outputs.files import OutputRefusedError, Outputs
 
     settings = _settings_from_args(args)
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        raise OutputRefusedError(f"{out} is a file, and sweep results go into a folder; choose another --out.")
     text, source = _load_text_arg(args.text)
     codecs = [load_codec(p) for p in args.checkpoints]
     names = [c.name for c in codecs]
     if len(set(names)) != len(names):
         raise ChunkscopeError("two checkpoints share a file name, so their output folders would collide; rename one.")
-    out = Path(args.out)
     targets = [out / name for name in names]
-    existing = [str(t) for t in targets if t.exists()]
-    if existing and not args.force:
-        raise ChunkscopeError(f"{', '.join(existing)} already exist(s); pass --force to replace, or choose another --out.")
+    _check_outputs(targets, args.force, SWEEP_FOLDER, folder=True)
     for codec in codecs:
         settings.validated(codec)
     results = []
-    for codec, target in zip(codecs, targets):
+    for codec in codecs:
         chunks = chunk_text(text, codec, source)
         progress = TerminalProgress(f"{codec.name[:16]:<16}") if not args.quiet else None
         result = run_sweep(codec, chunks, settings, progress=progress, text_source=source)
-        result.write(target, force=args.force)
         results.append(result)
-        print(f"wrote {target}/ ({result.decoded_chunks:,} decoded chunks in {result.elapsed_s:.1f}s)", file=sys.stderr)
+        print(f"swept {codec.name} ({result.decoded_chunks:,} decoded chunks in {result.elapsed_s:.1f}s)", file=sys.stderr)
+    with Outputs(args.force) as outputs:  # every checkpoint's folder appears together, or none
+        for result, target in zip(results, targets):
+            result.write_into(outputs.folder(target, SWEEP_FOLDER))
+    print(f"wrote {', '.join(f'{t}/' for t in targets)}", file=sys.stderr)
     print_tolerance_table(results)
     return 0
 
@@ -155,9 +197,12 @@ def print_comparison(comparison, stream=None) -> None:
         print(f"warning: {comparison.scale_warning}", file=stream)
     for p in comparison.paired:
         real = [r for r in p.rows if r.pvalue < 0.05]
-        where = ", ".join(f"{r.sigma:.3g} ({100 * r.difference:+.2f} pts)" for r in real[:8]) or "nowhere"
-        print(f"{p.name_b} − {p.name_a} ({comparison.main_noise}, per {p.unit}): significant at p < 0.05 at σ = {where}"
-              + (" …" if len(real) > 8 else ""), file=stream)
+        what = f"{p.name_b} − {p.name_a} ({comparison.main_noise}, per {p.unit})"
+        if not real:
+            print(f"{what}: the difference is not significant at p < 0.05 at any σ of the grid.", file=stream)
+            continue
+        where = ", ".join(f"{r.sigma:.3g} ({100 * r.difference:+.2f} pts)" for r in real[:8])
+        print(f"{what}: significant at p < 0.05 at σ = {where}" + (" …" if len(real) > 8 else ""), file=stream)
 
 
 def _comparison_from_args(args, codecs, text, source, progress=None):
@@ -171,11 +216,12 @@ def _comparison_from_args(args, codecs, text, source, progress=None):
 
 
 def cmd_compare(args: argparse.Namespace) -> int:
+    from core.analyses.compare import COMPARE_FOLDER
     from core.codecs.checkpoint import load_codec
 
+    _settings_from_args(args)
     out = Path(args.out)
-    if out.exists() and not args.force:
-        raise ChunkscopeError(f"{out} already exists; pass --force to replace it, or choose another --out.")
+    _check_outputs([out], args.force, COMPARE_FOLDER, folder=True)
     text, source = _load_text_arg(args.text)
     codecs = [load_codec(p) for p in args.checkpoints]
     if len({c.name for c in codecs}) != len(codecs):
@@ -189,12 +235,17 @@ def cmd_compare(args: argparse.Namespace) -> int:
 
 
 def cmd_trend(args: argparse.Namespace) -> int:
-    from core.analyses.trend import sort_points, trend, trend_csv
+    from core.analyses.trend import check_trend_output, checkpoints_in, trend, write_trend
+    from core.outputs.files import OutputExistsError
 
     settings = _settings_from_args(args)
+    checkpoints_in(args.folder)  # a missing or empty folder is said before the table starts
     out = Path(args.out) if args.out else None
-    if out is not None and (out / "trend.csv").exists() and not args.force:
-        raise ChunkscopeError(f"{out / 'trend.csv'} already exists; pass --force to replace it, or choose another --out.")
+    if out is not None:
+        try:
+            check_trend_output(out, args.force)
+        except OutputExistsError as exc:
+            raise _already_exist([exc.path]) from None
     text, source = _load_text_arg(args.text)
     points = []
     print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} {'99.9 %':>9} {'99 %':>9} {'90 %':>9}")
@@ -209,12 +260,19 @@ def cmd_trend(args: argparse.Namespace) -> int:
         print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} {point.accuracy_at_zero * 100:8.3f}% "
               + " ".join(f"{x:>9}" for x in tols), flush=True)
     if out is not None:
-        from core.outputs.files import write_text_atomic
-
-        write_text_atomic(out / "trend.csv", trend_csv(points), force=args.force)
-        write_text_atomic(out / "trend.json", json.dumps([p.to_dict() for p in sort_points(points)], indent=1), force=args.force)
-        print(f"wrote {out / 'trend.csv'} and trend.json", file=sys.stderr)
+        written = write_trend(out, points, force=args.force)
+        print(f"wrote {' and '.join(str(p) for p in written)}", file=sys.stderr)
     return 0 if any(p.error is None for p in points) else 2
+
+
+def is_report_file(path: Path) -> bool:
+    """An HTML file: the kind of file `report` writes, and so the only kind --force replaces."""
+    try:
+        with open(path, "rb") as handle:
+            head = handle.read(512).lstrip(b"\xef\xbb\xbf \t\r\n").lower()
+    except OSError:
+        return False
+    return head.startswith(b"<!doctype html") or head.startswith(b"<html")
 
 
 def cmd_report(args: argparse.Namespace) -> int:
@@ -227,10 +285,10 @@ def cmd_report(args: argparse.Namespace) -> int:
     from core.analyses.trend import trend
 
     out = Path(args.out)
-    if out.exists() and not args.force:
-        raise ChunkscopeError(f"{out} already exists; pass --force to replace it, or choose another --out.")
     if not args.inputs and not args.trend:
         raise ChunkscopeError("give checkpoints or result folders to report on, or --trend FOLDER.")
+    settings = _settings_from_args(args)
+    _check_outputs([out], args.force, is_report_file, folder=False)
     sweeps, comparison, points = [], None, []
     paths = [Path(p) for p in args.inputs]
     folders = [p for p in paths if p.is_dir()]
@@ -240,7 +298,6 @@ def cmd_report(args: argparse.Namespace) -> int:
             comparison = read_comparison(folder)
         else:
             sweeps.append(read_sweep(folder))
-    settings = _settings_from_args(args)
     if files or args.trend:
         text, source = _load_text_arg(args.text)
     if files:
@@ -253,7 +310,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     if args.trend:
         points = list(trend(args.trend, text, settings, text_source=source))
     html = build_report(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise, title=args.title)
-    write_text_atomic(out, html, force=args.force)
+    write_text_atomic(out, html, force=args.force, recognise=is_report_file)
     print(f"wrote {out} ({len(html) / 1024:.0f} KiB, self-contained)", file=sys.stderr)
     return 0
 
@@ -300,14 +357,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="replace existing output folders")
     p.set_defaults(func=cmd_sweep)
 
-    try:
-        from core.training import train
-    except ImportError:
-        train = None
-    if train is not None and hasattr(train, "add_arguments"):
-        p = sub.add_parser("train", help="train a sample model from its recipe", description="Rebuild the sample models from the Python standard library's docstrings and comments.")
-        train.add_arguments(p)
-        p.set_defaults(func=cmd_train)
+    from core.training.recipes import add_arguments as add_train_arguments  # torch-free: --help stays fast
+
+    p = sub.add_parser("train", help="train a sample model from its recipe", description="Rebuild the sample models from the Python standard library's docstrings and comments.")
+    add_train_arguments(p)
+    p.set_defaults(func=cmd_train, stopped="stopped; checkpoints saved before this point are kept.")
 
     p = sub.add_parser("compare", help="compare checkpoints on one text, paired", description="Sweep two or more checkpoints on the same text with the same noise seed, under data-scale and isotropic noise; write tolerances side by side, the curves and McNemar tests per sigma.")
     p.add_argument("checkpoints", nargs="+", metavar="CKPT")
@@ -357,8 +411,8 @@ def main(argv: list[str] | None = None) -> int:
     except FileExistsError as exc:
         print(f"chunkscope: {exc}", file=sys.stderr)
         return 2
-    except (SweepCancelled, KeyboardInterrupt):
-        print("\nchunkscope: stopped; nothing was written.", file=sys.stderr)
+    except (SweepCancelled, KeyboardInterrupt):  # every other command writes its outputs together at the end, or not at all
+        print(f"\nchunkscope: {getattr(args, 'stopped', 'stopped; nothing was written.')}", file=sys.stderr)
         return 130
     except BrokenPipeError:  # output piped into a pager or `head` that stopped reading
         sys.stderr.close()

@@ -9,6 +9,8 @@ chi-square form with continuity correction (common practice; both as in statsmod
 
 from __future__ import annotations
 
+import csv
+import io
 import json
 import math
 import os
@@ -20,9 +22,10 @@ import numpy as np
 
 from core.codecs.contract import opened
 from core.errors import ChunkscopeError
-from core.outputs.files import staged_folder
+from core.outputs.files import result_folder, staged_folder
 from core.engine.noise import encode_chunks
 from core.engine.sweep import DEFAULT_SIGMAS, SweepResult, SweepSettings, read_sweep, run_sweep
+from core.outputs.reading import Damaged, json_kind, need
 from core.engine.text import chunk_text
 
 EXACT_BELOW = 25
@@ -185,35 +188,53 @@ class Comparison:
     def write(self, directory: str | os.PathLike, force: bool = False) -> Path:
         """compare.json, tolerances.csv, paired.csv and every sweep folder, written atomically."""
         directory = Path(directory)
-        with staged_folder(directory, force) as staging:
-            (staging / "compare.json").write_text(json.dumps(self.to_json_dict(), indent=1), encoding="utf-8")
-            (staging / "tolerances.csv").write_text(tolerance_csv(self), encoding="utf-8")
-            (staging / "paired.csv").write_text(paired_csv(self), encoding="utf-8")
-            for noise, sweeps in (("isotropic", self.isotropic), ("data-scale", self.data_scale)):
-                for r in sweeps:
-                    r.write(staging / "sweeps" / noise / r.codec_name)
+        with staged_folder(directory, force, COMPARE_FOLDER) as staging:
+            self.write_into(staging)
         return directory
+
+    def write_into(self, folder: Path) -> None:
+        """The comparison's files, written into an existing empty folder (a staging folder)."""
+        (folder / "compare.json").write_text(json.dumps(self.to_json_dict(), indent=1), encoding="utf-8")
+        (folder / "tolerances.csv").write_text(tolerance_csv(self), encoding="utf-8")
+        (folder / "paired.csv").write_text(paired_csv(self), encoding="utf-8")
+        for noise, sweeps in (("isotropic", self.isotropic), ("data-scale", self.data_scale)):
+            for r in sweeps:
+                r.write_into(folder / "sweeps" / noise / r.codec_name)
+
+
+COMPARE_FOLDER = result_folder("compare.json")
+
+
+def _csv_text(header: list[str], rows: list[list]) -> str:
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(header)
+    writer.writerows(rows)
+    return out.getvalue()
+
+
+def _number(value: float | None, fmt: str = ".6g") -> str:
+    return "" if value is None else format(value, fmt)
 
 
 def tolerance_csv(comparison: Comparison) -> str:
-    lines = ["checkpoint,sha256,latent_rms,accuracy_at_sigma0,noise,level,sigma,status"]
+    rows = []
     for t in comparison.tolerances:
-        for noise, rows in (("isotropic", t.absolute), ("data-scale", t.data_scale)):
-            for row in rows:
-                sigma = "" if row["sigma"] is None else f"{row['sigma']:.6g}"
-                lines.append(f"{t.name},{t.sha256},{t.latent_rms:.6g},{t.accuracy_at_zero:.6f},{noise},{row['level']},{sigma},{row['status']}")
-    return "\n".join(lines) + "\n"
+        for noise, tols in (("isotropic", t.absolute), ("data-scale", t.data_scale)):
+            for row in tols:
+                rows.append([t.name, t.sha256, _number(t.latent_rms), _number(t.accuracy_at_zero, ".6f"), noise,
+                             row["level"], _number(row["sigma"]), row["status"]])
+    return _csv_text(["checkpoint", "sha256", "latent_rms", "accuracy_at_sigma0", "noise", "level", "sigma", "status"], rows)
 
 
 def paired_csv(comparison: Comparison) -> str:
-    lines = ["a,b,unit,sigma,accuracy_a,accuracy_b,difference,a_only,b_only,units,statistic,pvalue,method"]
+    rows = []
     for p in comparison.paired:
         for r in p.rows:
-            lines.append(
-                f"{p.name_a},{p.name_b},{p.unit},{r.sigma:.6g},{r.accuracy_a:.6f},{r.accuracy_b:.6f},{r.difference:.6f},"
-                f"{r.a_only},{r.b_only},{r.units},{r.statistic:.6g},{r.pvalue:.6g},{r.method}"
-            )
-    return "\n".join(lines) + "\n"
+            rows.append([p.name_a, p.name_b, p.unit, _number(r.sigma), _number(r.accuracy_a, ".6f"), _number(r.accuracy_b, ".6f"),
+                         _number(r.difference, ".6f"), r.a_only, r.b_only, r.units, _number(r.statistic), _number(r.pvalue), r.method])
+    header = ["a", "b", "unit", "sigma", "accuracy_a", "accuracy_b", "difference", "a_only", "b_only", "units", "statistic", "pvalue", "method"]
+    return _csv_text(header, rows)
 
 
 def scale_warning(names: Sequence[str], rms: Sequence[float]) -> str | None:
@@ -299,20 +320,66 @@ def compare_codecs(
     return Comparison(settings_dict, results["isotropic"], results["data-scale"], rows, paired, main_noise, scale_warning(names, rms))
 
 
-def read_comparison(directory: str | os.PathLike) -> Comparison:
-    """Reopen a comparison folder written by `Comparison.write`."""
+def read_comparison(directory: str | os.PathLike, name: str | None = None) -> Comparison:
+    """Reopen a comparison folder written by `Comparison.write`; `name` is how errors name it."""
     directory = Path(directory)
+    label = name or str(directory)
+    if not (directory / "compare.json").is_file():
+        raise ChunkscopeError(f"{label} is not a comparison folder: compare.json is missing.")
     try:
         data = json.loads((directory / "compare.json").read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise ChunkscopeError(f"{directory.name} is not a comparison folder: compare.json is missing.") from None
-    except ValueError as exc:
-        raise ChunkscopeError(f"{directory.name} holds a damaged compare.json: {exc}.") from None
-    names = [c["name"] for c in data["settings"]["checkpoints"]]
-    iso = [read_sweep(directory / "sweeps" / "isotropic" / n) for n in names]
-    ds = [read_sweep(directory / "sweeps" / "data-scale" / n) for n in names]
-    tolerances = [ToleranceRow(**t) for t in data["tolerances"]]
-    paired = [
-        PairedComparison(p["name_a"], p["name_b"], p["unit"], [PairedRow(**r) for r in p["rows"]]) for p in data["paired"]
-    ]
-    return Comparison(data["settings"], iso, ds, tolerances, paired, data["main_noise"], data.get("scale_warning"))
+    except OSError as exc:
+        raise ChunkscopeError(f"{label}/compare.json cannot be read: {exc.strerror or exc}.") from None
+    except ValueError:
+        raise ChunkscopeError(f"{label}/compare.json is damaged: it is not valid JSON.") from None
+    return _comparison_from_json(directory, label, data)
+
+
+def _safe_folder_name(name: Any) -> bool:
+    return isinstance(name, str) and name not in ("", ".", "..") and Path(name).name == name and "\\" not in name
+
+
+def _comparison_from_json(directory: Path, label: str, data: Any) -> Comparison:
+    """The one validator of a comparison folder: a Comparison, or one sentence naming the file."""
+    try:
+        if not isinstance(data, dict):
+            raise Damaged(f"it holds {json_kind(data)}, not an object")
+        settings = need(data, "settings", dict)
+        checkpoints = need(settings, "checkpoints", list, "settings")
+        names = [c.get("name") if isinstance(c, dict) else None for c in checkpoints]
+        if len(names) < 2 or not all(_safe_folder_name(n) for n in names) or len(set(names)) != len(names):
+            raise Damaged("the settings do not name two or more checkpoints, each once")
+        main_noise = need(data, "main_noise", str)
+        if main_noise not in ("data-scale", "isotropic"):
+            raise Damaged(f"its main noise model {main_noise!r} is not data-scale or isotropic")
+        warning = data.get("scale_warning")
+        if warning is not None and not isinstance(warning, str):
+            raise Damaged(f"its scale warning is {json_kind(warning)}, not a string")
+        tolerances = []
+        for t in need(data, "tolerances", list):
+            try:
+                row = ToleranceRow(**t)
+            except TypeError:
+                raise Damaged("its tolerances are not rows of checkpoint tolerances") from None
+            for tols in (row.absolute, row.data_scale):
+                if not isinstance(tols, list) or not all(isinstance(x, dict) and {"level", "sigma", "status"} <= set(x) for x in tols):
+                    raise Damaged(f"the tolerances of {row.name!r} are not a list of levels with their sigma and status")
+            tolerances.append(row)
+        paired = []
+        for p in need(data, "paired", list):
+            rows = []
+            for r in need(p, "rows", list, "paired[]"):
+                try:
+                    rows.append(PairedRow(**r))
+                except TypeError:
+                    raise Damaged("its paired tests are not rows of McNemar tests") from None
+                numbers = [v for k, v in vars(rows[-1]).items() if k != "method"]
+                if any(isinstance(v, bool) or not isinstance(v, (int, float)) for v in numbers):
+                    raise Damaged("a paired test's row holds something other than numbers")
+            paired.append(PairedComparison(need(p, "name_a", str, "paired[]"), need(p, "name_b", str, "paired[]"),
+                                           need(p, "unit", str, "paired[]"), rows))
+    except Damaged as exc:
+        raise ChunkscopeError(f"{label}/compare.json is damaged: {exc}.") from None
+    iso = [read_sweep(directory / "sweeps" / "isotropic" / n, f"{label}/sweeps/isotropic/{n}") for n in names]
+    ds = [read_sweep(directory / "sweeps" / "data-scale" / n, f"{label}/sweeps/data-scale/{n}") for n in names]
+    return Comparison(settings, iso, ds, tolerances, paired, main_noise, warning)

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import csv
+import io
+import json
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -9,8 +12,9 @@ from typing import Callable, Iterator
 
 from core.codecs.checkpoint import load_codec
 from core.errors import ChunkscopeError, SweepCancelled
-from core.engine.sweep import SweepResult, SweepSettings, run_sweep
+from core.engine.sweep import TOLERANCE_LEVELS, SweepResult, SweepSettings, run_sweep
 from core.engine.text import chunk_text
+from core.outputs.files import Outputs, OutputRefusedError, check_target, check_writable
 
 STEP_KEYS = ("step", "steps_done", "global_step", "steps")
 _STEP_IN_NAME = re.compile(r"(?:step|iter|it|ckpt|checkpoint)?[-_ ]?(\d+)(?!.*\d)", re.IGNORECASE)
@@ -54,11 +58,13 @@ class TrendPoint:
 
 def checkpoints_in(folder: str | Path) -> list[Path]:
     folder = Path(folder)
+    if not folder.exists():
+        raise ChunkscopeError(f"{folder} does not exist.")
     if not folder.is_dir():
-        raise ChunkscopeError(f"{folder.name} is not a folder.")
+        raise ChunkscopeError(f"{folder} is not a folder.")
     paths = sorted(folder.glob("*.safetensors"))
     if not paths:
-        raise ChunkscopeError(f"{folder.name} holds no .safetensors checkpoints.")
+        raise ChunkscopeError(f"{folder} holds no .safetensors checkpoints.")
     return paths
 
 
@@ -107,15 +113,69 @@ def sort_points(points: list[TrendPoint]) -> list[TrendPoint]:
     return sorted(points, key=lambda p: (p.step is None, p.step if p.step is not None else 0, p.name))
 
 
+TREND_CSV_COLUMNS = [
+    "name", "step", "step_source", "status", "accuracy_at_sigma0",
+    "tol_99.9", "tol_99.9_status", "tol_99", "tol_99_status", "tol_90", "tol_90_status",
+    "latent_rms", "sha256", "error",
+]
+NOT_MEASURED = "not measured"
+
+
 def trend_csv(points: list[TrendPoint]) -> str:
-    lines = ["name,step,step_source,accuracy_at_sigma0,tol_99.9,tol_99,tol_90,latent_rms,sha256,error"]
+    """One row per checkpoint, in step order. Numeric columns hold numbers or nothing; each
+    tolerance's status column says what a number means ("above_grid": a lower bound) or why
+    there is none ("below_at_zero", "not measured" when the checkpoint failed)."""
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(TREND_CSV_COLUMNS)
     for p in sort_points(points):
-        tol = [p.tolerances.get(level, {}) for level in (0.999, 0.99, 0.9)]
-        cells = ["" if not t or t.get("sigma") is None else f"{t['sigma']:.6g}{'+' if t.get('status') == 'above_grid' else ''}" for t in tol]
-        error = (p.error or "").replace('"', "'")
-        lines.append(
-            f"{p.name},{'' if p.step is None else p.step},{p.step_source},"
-            f"{'' if p.accuracy_at_zero is None else f'{p.accuracy_at_zero:.6f}'},{','.join(cells)},"
-            f"{'' if p.latent_rms is None else f'{p.latent_rms:.6g}'},{p.sha256},\"{error}\""
+        cells: list = []
+        for level in TOLERANCE_LEVELS:
+            t = p.tolerances.get(level)
+            if p.error is not None or not t:
+                cells += ["", NOT_MEASURED]
+            else:
+                cells += ["" if t.get("sigma") is None else f"{t['sigma']:.6g}", t.get("status", "")]
+        writer.writerow(
+            [p.name, "" if p.step is None else p.step, p.step_source, "error" if p.error is not None else "ok",
+             "" if p.accuracy_at_zero is None else f"{p.accuracy_at_zero:.6f}"]
+            + cells
+            + ["" if p.latent_rms is None else f"{p.latent_rms:.6g}", p.sha256, p.error or ""]
         )
-    return "\n".join(lines) + "\n"
+    return out.getvalue()
+
+
+def _is_trend_csv(path: Path) -> bool:
+    try:
+        with open(path, encoding="utf-8", newline="") as handle:
+            return handle.readline().startswith("name,step,step_source,")
+    except (OSError, UnicodeDecodeError):
+        return False
+
+
+def _is_trend_json(path: Path) -> bool:
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    return isinstance(data, list) and all(isinstance(p, dict) and "name" in p and "step" in p for p in data)
+
+
+def write_trend(folder: str | Path, points: list[TrendPoint], force: bool = False) -> list[Path]:
+    """trend.csv and trend.json in `folder`, written together or not at all."""
+    folder = Path(folder)
+    with Outputs(force) as outputs:
+        outputs.file(folder / "trend.csv", _is_trend_csv).write_text(trend_csv(points), encoding="utf-8")
+        outputs.file(folder / "trend.json", _is_trend_json).write_text(
+            json.dumps([p.to_dict() for p in sort_points(points)], indent=1), encoding="utf-8")
+        return outputs.targets
+
+
+def check_trend_output(folder: str | Path, force: bool = False) -> None:
+    """Before any work: refuse now what `write_trend` would refuse at the end."""
+    folder = Path(folder)
+    if folder.exists() and not folder.is_dir():
+        raise OutputRefusedError(f"{folder} is a file, and trend results go into a folder; choose another name.")
+    for name, recognise in (("trend.csv", _is_trend_csv), ("trend.json", _is_trend_json)):
+        check_target(folder / name, force, recognise)
+    check_writable(folder / "trend.csv")

@@ -131,7 +131,7 @@ def _read_header(path: Path) -> dict:
         with open(path, "rb") as handle:
             head = handle.read(8)
             if len(head) < 8:
-                raise CheckpointError(f"{name} is not a safetensors file (it is only {size} bytes long).")
+                raise CheckpointError(f"{name} is not a safetensors file (it is only {size} byte{'' if size == 1 else 's'} long).")
             (header_len,) = struct.unpack("<Q", head)
             if header_len > 100_000_000:
                 raise CheckpointError(f"{name} is not a safetensors file (its first bytes are not a header length).")
@@ -142,10 +142,11 @@ def _read_header(path: Path) -> dict:
         raise CheckpointError(f"{name} cannot be read: {exc.strerror or exc}.") from exc
     try:
         header = json.loads(raw.decode("utf-8"))
-        if not isinstance(header, dict):
-            raise ValueError
     except (UnicodeDecodeError, ValueError):
         raise CheckpointError(f"{name} is not a safetensors file (its header is not JSON).") from None
+    if not isinstance(header, dict):
+        kind = "a list" if isinstance(header, list) else "a string" if isinstance(header, str) else "a single value"
+        raise CheckpointError(f"{name} is not a safetensors file (its header is JSON, but {kind}, not an object).")
     data_len = size - 8 - header_len
     for key, info in header.items():
         if key == "__metadata__":

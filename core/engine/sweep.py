@@ -24,8 +24,9 @@ import numpy as np
 import core
 from core.codecs.contract import opened
 from core.deferred import torch
-from core.errors import SettingsError, SweepCancelled
-from core.outputs.files import staged_folder
+from core.errors import ChunkscopeError, SettingsError, SweepCancelled
+from core.outputs.files import result_folder, staged_folder
+from core.outputs.reading import Damaged, json_kind, need
 from core.engine.noise import NOISE_BLOCK, NOISE_MODELS, Encoded, Progress, ShouldStop, check_noise, draw_eps, encode_chunks, noise_scale
 from core.engine.metrics import SigmaAccumulator, SigmaMetrics, frequency_buckets
 from core.engine.text import Chunks
@@ -84,6 +85,8 @@ class SweepSettings:
             raise SettingsError(f"the noise model must be one of {', '.join(NOISE_MODELS)}, not {self.noise!r}.")
         if not isinstance(self.seed, int) or self.seed < 0:
             raise SettingsError(f"the seed must be a whole number >= 0, not {self.seed!r}.")
+        if isinstance(self.batch_chunks, bool) or not isinstance(self.batch_chunks, int) or self.batch_chunks < 1:
+            raise SettingsError(f"the batch must be a whole number of chunks >= 1, not {self.batch_chunks!r}.")
         if codec is not None:
             check_noise(self.noise, codec)
         batch = max(NOISE_BLOCK, (int(self.batch_chunks) // NOISE_BLOCK) * NOISE_BLOCK)
@@ -214,62 +217,176 @@ class SweepResult:
     def write(self, directory: str | os.PathLike, force: bool = False) -> Path:
         """Write sweep.json, curves.csv, tokens.csv and arrays.npz into a fresh directory, atomically."""
         directory = Path(directory)
-        with staged_folder(directory, force) as staging:
-            (staging / "sweep.json").write_text(json.dumps(self.to_json_dict(), indent=1, allow_nan=True), encoding="utf-8")
-            (staging / "curves.csv").write_text(self.curves_csv(), encoding="utf-8")
-            (staging / "tokens.csv").write_text(self.tokens_csv(), encoding="utf-8")
-            (staging / "text.txt").write_text(self.chunks.text, encoding="utf-8")
-            (staging / "vocab.json").write_text(json.dumps({str(k): v for k, v in self.token_text.items()}), encoding="utf-8")
-            np.savez_compressed(
-                staging / "arrays.npz",
-                token_ids=self.chunks.token_ids,
-                spans=self.chunks.spans,
-                wrong_counts=self.wrong_counts,
-                decoded=self.decoded,
-                critical_sigma=self.critical_sigma,
-            )
+        with staged_folder(directory, force, SWEEP_FOLDER) as staging:
+            self.write_into(staging)
         return directory
 
+    def write_into(self, folder: Path) -> None:
+        """The sweep's files, written into an existing empty folder (a staging folder)."""
+        folder.mkdir(parents=True, exist_ok=True)
+        (folder / "sweep.json").write_text(json.dumps(self.to_json_dict(), indent=1, allow_nan=True), encoding="utf-8")
+        (folder / "curves.csv").write_text(self.curves_csv(), encoding="utf-8")
+        (folder / "tokens.csv").write_text(self.tokens_csv(), encoding="utf-8")
+        (folder / "text.txt").write_text(self.chunks.text, encoding="utf-8")
+        (folder / "vocab.json").write_text(json.dumps({str(k): v for k, v in self.token_text.items()}), encoding="utf-8")
+        np.savez_compressed(
+            folder / "arrays.npz",
+            token_ids=self.chunks.token_ids,
+            spans=self.chunks.spans,
+            wrong_counts=self.wrong_counts,
+            decoded=self.decoded,
+            critical_sigma=self.critical_sigma,
+        )
 
-def read_sweep(directory: str | os.PathLike) -> SweepResult:
-    """Reopen a sweep written by `SweepResult.write` (from the command line or the workbench)."""
-    from core.errors import ChunkscopeError
 
+SWEEP_FOLDER = result_folder("sweep.json", "arrays.npz")
+SWEEP_ARRAYS = {"token_ids": "integer", "spans": "integer", "wrong_counts": "integer", "decoded": "integer", "critical_sigma": "floating"}
+
+
+def read_sweep(directory: str | os.PathLike, name: str | None = None) -> SweepResult:
+    """Reopen a sweep written by `SweepResult.write` (from the command line or the workbench).
+
+    `name` is how errors name the folder (a workspace passes its own file's name, not the
+    temporary folder it unpacked into)."""
     directory = Path(directory)
+    label = name or str(directory)
+    if not directory.is_dir():
+        raise ChunkscopeError(f"{label} is not a sweep folder: it is not a folder.")
+    raw = {}
+    for file in ("sweep.json", "arrays.npz", "text.txt"):
+        if not (directory / file).is_file():
+            raise ChunkscopeError(f"{label} is not a sweep folder: {file} is missing.")
     try:
-        data = json.loads((directory / "sweep.json").read_text(encoding="utf-8"))
-        with np.load(directory / "arrays.npz") as npz:
-            arrays = {key: npz[key] for key in npz.files}
-        text = (directory / "text.txt").read_text(encoding="utf-8")
+        raw["sweep.json"] = json.loads((directory / "sweep.json").read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise ChunkscopeError(f"{label}/sweep.json cannot be read: {exc.strerror or exc}.") from None
+    except ValueError:
+        raise ChunkscopeError(f"{label}/sweep.json is damaged: it is not valid JSON.") from None
+    raw["arrays.npz"] = _read_npz(directory / "arrays.npz", f"{label}/arrays.npz")
+    try:
+        raw["text.txt"] = (directory / "text.txt").read_text(encoding="utf-8")
         vocab_path = directory / "vocab.json"
-        token_text = {int(k): v for k, v in json.loads(vocab_path.read_text(encoding="utf-8")).items()} if vocab_path.exists() else {}
-    except FileNotFoundError as exc:
-        raise ChunkscopeError(f"{directory.name} is not a sweep folder: {Path(exc.filename).name} is missing.") from None
-    except (ValueError, OSError, KeyError) as exc:
-        raise ChunkscopeError(f"{directory.name} holds a damaged sweep: {exc}.") from None
-    s = data["settings"]
-    settings = SweepSettings(sigmas=tuple(s["sigmas"]), repeats=int(s["repeats"]), noise=s["noise"], seed=int(s["seed"]))
-    prov = data["provenance"]
+        raw["vocab.json"] = json.loads(vocab_path.read_text(encoding="utf-8")) if vocab_path.exists() else {}
+    except OSError as exc:
+        raise ChunkscopeError(f"{label} cannot be read: {exc.strerror or exc}.") from None
+    except ValueError:
+        raise ChunkscopeError(f"{label} holds a damaged text.txt or vocab.json: it is not valid UTF-8 text or JSON.") from None
+    return _sweep_from_files(label, raw)
+
+
+def _read_npz(path: Path, label: str) -> dict[str, np.ndarray]:
+    """Every array of an .npz, never unpickling anything."""
+    try:
+        with np.load(path, allow_pickle=False) as npz:
+            return {key: npz[key] for key in npz.files}
+    except ValueError as exc:
+        if "pickle" in str(exc):
+            raise ChunkscopeError(
+                f"{label} is damaged or was not written by chunkscope: it holds Python objects, which are never loaded."
+            ) from None
+        raise ChunkscopeError(f"{label} is damaged: it is not a NumPy archive chunkscope can read.") from None
+    except AttributeError:  # a bare .npy array, not an archive
+        raise ChunkscopeError(f"{label} is damaged or was not written by chunkscope: it is not a NumPy archive.") from None
+    except Exception:  # zipfile.BadZipFile, zlib.error, EOFError, OSError: a broken archive
+        raise ChunkscopeError(f"{label} is damaged: it is not a NumPy archive chunkscope can read.") from None
+
+
+def _sweep_from_files(label: str, raw: dict[str, Any]) -> SweepResult:
+    """The one validator of a sweep folder's contents: a SweepResult, or one sentence naming the file."""
+    file = "sweep.json"
+    try:
+        data = raw[file]
+        if not isinstance(data, dict):
+            raise Damaged(f"it holds {json_kind(data)}, not an object")
+        s = need(data, "settings", dict)
+        sigmas = need(s, "sigmas", list, "settings")
+        if not sigmas or any(isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x) or x < 0 for x in sigmas):
+            raise Damaged("the settings' sigmas are not a list of numbers >= 0")
+        if any(b <= a for a, b in zip(sigmas, sigmas[1:])):
+            raise Damaged("the settings' sigmas are not in increasing order")
+        repeats = need(s, "repeats", int, "settings")
+        noise = need(s, "noise", str, "settings")
+        seed = need(s, "seed", int, "settings")
+        if repeats < 1 or seed < 0 or noise not in NOISE_MODELS:
+            raise Damaged("its settings hold a repeat count, seed or noise model no sweep can have")
+        prov = need(data, "provenance", dict)
+        codec = need(prov, "codec", dict, "provenance")
+        need(codec, "name", str, "provenance.codec")
+        config = need(codec, "config", dict, "provenance.codec")
+        chunk_size = need(config, "chunk_size", int, "provenance.codec.config")
+        pad_id = need(config, "pad_id", int, "provenance.codec.config")
+        if chunk_size < 1 or pad_id < 0:
+            raise Damaged("the codec's chunk size or pad id is out of range")
+        text_info = need(prov, "text", dict, "provenance")
+        text_sha = need(text_info, "sha256", str, "provenance.text")
+        curves_raw = need(data, "curves", list)
+        if len(curves_raw) != len(sigmas):
+            raise Damaged(f"it has {len(curves_raw)} curve points for {len(sigmas)} sigmas")
+        try:
+            curves = [SigmaMetrics.from_dict(c) for c in curves_raw]
+        except (TypeError, ValueError, AttributeError):
+            raise Damaged("its curves do not hold the metrics of a sweep") from None
+        try:
+            tolerances = [Tolerance(**t) for t in need(data, "tolerances", list)]
+        except TypeError:
+            raise Damaged("its tolerances are not tolerances") from None
+        latent_rms = need(data, "latent_rms", (int, float))
+        elapsed = need(data, "elapsed_s", (int, float))
+        decoded_chunks = need(data, "decoded_chunks", int)
+
+        file = "arrays.npz"
+        arrays = raw[file]
+        for key, kind in SWEEP_ARRAYS.items():
+            if key not in arrays:
+                raise Damaged(f"the array {key} is missing")
+            if not np.issubdtype(arrays[key].dtype, getattr(np, kind)):
+                raise Damaged(f"the array {key} holds {arrays[key].dtype} values, not {kind} numbers")
+        if arrays["token_ids"].ndim != 1:
+            raise Damaged(f"the array token_ids has shape {list(arrays['token_ids'].shape)}, not one id per token")
+        n_tokens, n_sigma = len(arrays["token_ids"]), len(sigmas)
+        shapes = {"spans": (n_tokens, 2), "wrong_counts": (n_tokens, n_sigma), "decoded": (n_tokens, n_sigma),
+                  "critical_sigma": (n_tokens,)}
+        for key, shape in shapes.items():
+            if arrays[key].shape != shape:
+                raise Damaged(f"the array {key} has shape {list(arrays[key].shape)}, not {list(shape)} "
+                               f"({n_tokens} tokens, {n_sigma} sigmas)")
+
+        file = "text.txt"
+        text = raw[file]
+        if n_tokens and (int(arrays["spans"].min()) < 0 or int(arrays["spans"].max()) > len(text)):
+            raise Damaged("it does not match the token spans in arrays.npz")
+
+        file = "vocab.json"
+        vocab = raw[file]
+        if not isinstance(vocab, dict) or not all(isinstance(v, str) for v in vocab.values()):
+            raise Damaged("it is not a map from token ids to their text")
+        try:
+            token_text = {int(k): v for k, v in vocab.items()}
+        except ValueError:
+            raise Damaged("it is not a map from token ids to their text") from None
+    except Damaged as exc:
+        raise ChunkscopeError(f"{label}/{file} is damaged: {exc}.") from None
+    settings = SweepSettings(sigmas=tuple(float(x) for x in sigmas), repeats=repeats, noise=noise, seed=seed)
     chunks = Chunks(
         text=text,
-        text_sha256=prov["text"]["sha256"],
+        text_sha256=text_sha,
         token_ids=arrays["token_ids"],
         spans=arrays["spans"],
-        chunk_size=int(prov["codec"]["config"]["chunk_size"]),
-        pad_id=int(prov["codec"]["config"]["pad_id"]),
+        chunk_size=chunk_size,
+        pad_id=pad_id,
     )
     return SweepResult(
         settings=settings,
         provenance=prov,
-        curves=[SigmaMetrics.from_dict(c) for c in data["curves"]],
-        tolerances=[Tolerance(**t) for t in data["tolerances"]],
+        curves=curves,
+        tolerances=tolerances,
         chunks=chunks,
         wrong_counts=arrays["wrong_counts"],
         decoded=arrays["decoded"],
         critical_sigma=arrays["critical_sigma"],
-        latent_rms=float(data["latent_rms"]),
-        elapsed_s=float(data["elapsed_s"]),
-        decoded_chunks=int(data["decoded_chunks"]),
+        latent_rms=float(latent_rms),
+        elapsed_s=float(elapsed),
+        decoded_chunks=decoded_chunks,
         token_text=token_text,
     )
 

@@ -21,6 +21,7 @@ from core.codecs.checkpoint import file_sha256
 from core.analyses.compare import Comparison, read_comparison
 from core.errors import ChunkscopeError
 from core.outputs.files import refuse_existing, staged_file
+from core.outputs.reading import Damaged, json_kind
 from core.engine.sweep import SweepResult, read_sweep
 from core.analyses.trend import TrendPoint
 
@@ -95,41 +96,89 @@ def save_workspace(workspace: Workspace, path: str | os.PathLike, force: bool = 
 def load_workspace(path: str | os.PathLike) -> Workspace:
     path = Path(path)
     if not path.is_file():
-        raise ChunkscopeError(f"{path.name} does not exist or is not a file.")
+        raise ChunkscopeError(f"{path} does not exist or is not a file.")
     staging = Path(tempfile.mkdtemp(prefix=".workspace-"))
     try:
         try:
             with zipfile.ZipFile(path) as archive:
                 for name in archive.namelist():
                     if name.startswith("/") or ".." in Path(name).parts:
-                        raise ChunkscopeError(f"{path.name} holds an unsafe path {name!r}.")
+                        raise ChunkscopeError(f"{path} holds an unsafe path {name!r}.")
                 archive.extractall(staging)
+        except ChunkscopeError:
+            raise
         except zipfile.BadZipFile:
-            raise ChunkscopeError(f"{path.name} is not a chunkscope workspace (not a zip file).") from None
+            raise ChunkscopeError(f"{path} is not a chunkscope workspace (not a zip file, or a damaged one).") from None
+        except OSError as exc:
+            raise ChunkscopeError(f"{path} cannot be read: {exc.strerror or exc}.") from None
+        except Exception:  # zlib.error, EOFError: a damaged member
+            raise ChunkscopeError(f"{path} is damaged: a file inside it cannot be unpacked.") from None
         try:
             manifest = json.loads((staging / "workspace.json").read_text(encoding="utf-8"))
         except FileNotFoundError:
-            raise ChunkscopeError(f"{path.name} is not a chunkscope workspace (workspace.json is missing).") from None
+            raise ChunkscopeError(f"{path} is not a chunkscope workspace (workspace.json is missing).") from None
         except ValueError:
-            raise ChunkscopeError(f"{path.name} has a damaged workspace.json.") from None
-        if int(manifest.get("format", 0)) > WORKSPACE_FORMAT:
-            raise ChunkscopeError(f"{path.name} was saved by a newer chunkscope (workspace format {manifest['format']}).")
-        sweeps = {key: read_sweep(staging / folder) for key, folder in manifest.get("sweeps", {}).items()}
-        comparison = read_comparison(staging / manifest["comparison"]) if manifest.get("comparison") else None
-        points = []
-        for p in manifest.get("trend_points", []):
-            p = dict(p)
-            p["tolerances"] = {float(k): v for k, v in p.get("tolerances", {}).items()}
-            points.append(TrendPoint(**p))
-        return Workspace(
-            checkpoints=manifest.get("checkpoints", []),
-            text=(staging / "text.txt").read_text(encoding="utf-8"),
-            text_source=manifest.get("text_source", ""),
-            settings=manifest.get("settings", {}),
-            sweeps=sweeps,
-            comparison=comparison,
-            trend_points=points,
-            trend_folder=manifest.get("trend_folder", ""),
-        )
+            raise ChunkscopeError(f"{path} has a damaged workspace.json: it is not valid JSON.") from None
+        try:
+            text = (staging / "text.txt").read_text(encoding="utf-8")
+        except FileNotFoundError:
+            raise ChunkscopeError(f"{path} is damaged: text.txt is missing.") from None
+        except ValueError:
+            raise ChunkscopeError(f"{path} is damaged: text.txt is not UTF-8 text.") from None
+        return _workspace_from_files(path, staging, manifest, text)
     finally:
         shutil.rmtree(staging, ignore_errors=True)
+
+
+def _workspace_from_files(path: Path, staging: Path, manifest: Any, text: str) -> Workspace:
+    """The one validator of a workspace's contents (its sweeps and comparison by their own readers)."""
+    try:
+        if not isinstance(manifest, dict):
+            raise Damaged(f"it holds {json_kind(manifest)}, not an object")
+        version = manifest.get("format", 0)
+        if isinstance(version, bool) or not isinstance(version, int):
+            raise Damaged(f"its format is {json_kind(version)}, not a whole number")
+        if version > WORKSPACE_FORMAT:
+            raise ChunkscopeError(f"{path} was saved by a newer chunkscope (workspace format {version}).")
+        sweep_folders = manifest.get("sweeps", {})
+        if not isinstance(sweep_folders, dict) or not all(isinstance(v, str) for v in sweep_folders.values()):
+            raise Damaged("its sweeps are not a map from names to folders")
+        comparison_folder = manifest.get("comparison")
+        if comparison_folder is not None and not isinstance(comparison_folder, str):
+            raise Damaged(f"its comparison is {json_kind(comparison_folder)}, not a folder name")
+        for folder in list(sweep_folders.values()) + [comparison_folder or ""]:
+            if folder.startswith("/") or ".." in Path(folder).parts:
+                raise Damaged(f"it names a folder outside the workspace, {folder!r}")
+        checkpoints = manifest.get("checkpoints", [])
+        if not isinstance(checkpoints, list) or not all(isinstance(c, dict) and isinstance(c.get("path"), str) for c in checkpoints):
+            raise Damaged("its checkpoints are not a list of paths")
+        settings = manifest.get("settings", {})
+        if not isinstance(settings, dict):
+            raise Damaged(f"its settings are {json_kind(settings)}, not an object")
+        for key in ("text_source", "trend_folder"):
+            if not isinstance(manifest.get(key, ""), str):
+                raise Damaged(f"its {key.replace('_', ' ')} is {json_kind(manifest[key])}, not a string")
+        points = []
+        for p in manifest.get("trend_points", []) if isinstance(manifest.get("trend_points", []), list) else [None]:
+            if not isinstance(p, dict) or not isinstance(p.get("tolerances", {}), dict):
+                raise Damaged("its training-run points are not points")
+            p = dict(p)
+            try:
+                p["tolerances"] = {float(k): v for k, v in p.get("tolerances", {}).items()}
+                points.append(TrendPoint(**p))
+            except (TypeError, ValueError):
+                raise Damaged("its training-run points are not points") from None
+    except Damaged as exc:
+        raise ChunkscopeError(f"{path} has a damaged workspace.json: {exc}.") from None
+    sweeps = {key: read_sweep(staging / folder, f"{path} ({folder})") for key, folder in sweep_folders.items()}
+    comparison = read_comparison(staging / comparison_folder, f"{path} ({comparison_folder})") if comparison_folder else None
+    return Workspace(
+        checkpoints=checkpoints,
+        text=text,
+        text_source=manifest.get("text_source", ""),
+        settings=settings,
+        sweeps=sweeps,
+        comparison=comparison,
+        trend_points=points,
+        trend_folder=manifest.get("trend_folder", ""),
+    )
