@@ -192,7 +192,7 @@ def _one_line(err: str) -> str:
 
 @pytest.mark.parametrize("stop_in", ["a", "b"])
 def test_interrupted_sweep_writes_nothing_and_says_so(run_folder, text_file, tmp_path, capsys, monkeypatch, stop_in):
-    from core.codecs.checkpoint import Codec
+    from core.codecs.contract import OpenedCodec as Codec
 
     decode = Codec.decode
 
@@ -210,7 +210,7 @@ def test_interrupted_sweep_writes_nothing_and_says_so(run_folder, text_file, tmp
 
 
 def test_interrupted_forced_sweep_keeps_the_old_results(run_folder, text_file, tmp_path, capsys, monkeypatch):
-    from core.codecs.checkpoint import Codec
+    from core.codecs.contract import OpenedCodec as Codec
 
     out = tmp_path / "s3"
     assert main(_command("sweep", run_folder, text_file, out)) == 0
@@ -304,7 +304,7 @@ def read_only(tmp_path, monkeypatch):
 
 @pytest.mark.parametrize("command,target", [("sweep", "results"), ("compare", "cmp"), ("trend", "trend"), ("report", "r.html")])
 def test_read_only_output_is_refused_before_the_work(run_folder, text_file, capsys, monkeypatch, read_only, command, target):
-    from core.codecs.checkpoint import Codec
+    from core.codecs.contract import OpenedCodec as Codec
 
     def no_work(self, ids):
         raise AssertionError("the work started before the output was checked")
@@ -318,7 +318,7 @@ def test_read_only_output_is_refused_before_the_work(run_folder, text_file, caps
 
 @pytest.mark.parametrize("command,target", [("sweep", "results"), ("compare", "cmp"), ("trend", "trend"), ("report", "r.html")])
 def test_output_failing_at_the_end_gives_one_sentence_and_leaves_nothing(run_folder, text_file, capsys, monkeypatch, read_only, command, target):
-    from core.codecs.checkpoint import Codec
+    from core.codecs.contract import OpenedCodec as Codec
 
     read_only["on"] = False
     decode = Codec.decode
