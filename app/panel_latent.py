@@ -14,7 +14,7 @@ from app.state import Workbench
 from app.style import PALETTE, faded, fmt_sigma, log_ticks, pen, plot_widget
 import core
 from core.outputs.report import provenance_caption
-from core.engine.health import ACTIVE_THRESHOLD, expected_noise_norm
+from core.engine.health import ACTIVE_THRESHOLD, geometry_check
 
 
 class LatentPanel(QWidget):
@@ -97,10 +97,11 @@ class LatentPanel(QWidget):
         self.rms_value.setText(f"{health.latent_rms:.4g}")
         self.rms_note.setText("sets the scale of absolute σ")
 
+        summary = health.summary()
         if health.kl_per_dim is not None:
             kl = health.kl_per_dim
-            self.kl_value.setText(f"{kl.sum():.4g} nats")
-            self.kl_note.setText(f"mean posterior std {health.std_per_dim.mean():.3g}")
+            self.kl_value.setText(f"{summary['kl_total']:.4g} nats")
+            self.kl_note.setText(f"mean posterior std {summary['posterior_std_mean']:.3g}")
             self.kl_plot.getPlotItem().addItem(pg.BarGraphItem(x=dims, height=kl, width=0.8, brush=p.ink, pen=None))
             self.std_plot.getPlotItem().addItem(
                 pg.BarGraphItem(x=dims, height=health.std_per_dim, width=0.8, brush=p.ink_soft, pen=None))
@@ -138,16 +139,17 @@ class LatentPanel(QWidget):
             self.verdict.setText("The text has fewer than two distinct chunks, so there is no nearest neighbour to measure.")
             self.plotted.emit()
             return
-        median = float(np.median(half))
-        self.nn_value.setText(f"{median:.4g}")
-        self.nn_note.setText(f"1st percentile {np.quantile(half, 0.01):.4g} · {len(half):,} distinct chunks"
-                             + (" (sampled)" if health.nn_sampled else ""))
+        self.nn_value.setText(f"{summary['nn_half_distance_median']:.4g}")
+        self.nn_note.setText(f"1st percentile {summary['nn_half_distance_p01']:.4g} · {summary['nn_chunks']:,} distinct chunks"
+                             + (" (sampled)" if summary["nn_sampled"] else ""))
         hist, edges = np.histogram(half, bins=60)
         nn.addItem(pg.PlotDataItem(edges, hist, stepMode="center", fillLevel=0, brush=faded(p.ink, 60), pen=pen(p.ink, 1.2)))
         sweep = entry.sweep
         tol = sweep.tolerance(0.99) if sweep is not None else None
-        if tol is not None and tol.sigma is not None and entry.encoded is not None:
-            norm = expected_noise_norm(tol.sigma, sweep.settings.noise, entry.encoded)
+        check = geometry_check(health, tol.sigma, sweep.settings.noise, entry.encoded) if (
+            tol is not None and tol.sigma is not None and entry.encoded is not None) else None
+        if check is not None:
+            norm = check.noise_norm
             lower = tol.status == "above_grid"
             self.noise_value.setText(("≥ " if lower else "") + f"{norm:.4g}")
             self.noise_note.setText(f"σ {fmt_sigma(tol.sigma)}, {sweep.settings.noise} noise")
@@ -155,15 +157,14 @@ class LatentPanel(QWidget):
                                        label="noise norm at the 99 % tolerance", labelOpts={"position": 0.92, "color": p.accent,
                                                                                             "anchors": [(1, 0), (1, 0)]}))
             nn.setXRange(min(float(half.min()), norm) * 0.95, max(float(half.max()), norm) * 1.08)
-            below = float((half < norm).mean())
-            if below > 0.5:
+            if check.limit == "geometry":
                 why = ("Most chunks' perturbations reach past the midpoint to their nearest neighbour at that σ, "
                        "so the <b>geometry</b> of the latent space is the limit: the decoder keeps up as long as neighbours stay apart.")
             else:
                 why = ("Most chunks keep their perturbation inside their own half-distance at that σ yet tokens still break, "
                        "so the <b>decoder</b> is the limit, not how far apart the chunks sit.")
             self.verdict.setText(
-                f"At the 99 % tolerance the noise has length {norm:.4g}; {below * 100:.0f} % of distinct chunks have a nearest "
+                f"At the 99 % tolerance the noise has length {norm:.4g}; {check.closer * 100:.0f} % of distinct chunks have a nearest "
                 f"neighbour closer than twice that. {why}"
             )
         else:

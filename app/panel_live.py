@@ -26,7 +26,7 @@ from core.engine.noise import NOISE_MODELS
 from core.analyses.live import LivePerturbation
 from core.engine.text import Chunks
 from core.codecs.tokenizer import token_display
-from core.analyses.views import LiveWindow, decoded_layout, merge_windows, perturb_window, remaining_ranges
+from core.analyses.views import LiveWindow, decoded_layout, perturb_on_screen_first
 
 RELATIVE_MAX = 2.0
 TOP_K = 5  # alternatives shown when hovering a token (core.analyses.views.perturb_window's default)
@@ -34,26 +34,10 @@ MAX_MARKED = 4000  # beyond this many wrong tokens the panes stop marking each o
 
 
 def _live(task: Task, codec, chunks: Chunks, encoded, sigma: float, noise: str, seed: int, draw: int,
-          first: int, last: int):
-    """Decode the chunks on screen (argmax only: the quickest answer), report them, then decode
-    the whole text with each token's top alternatives and return it."""
-    start, stop = max(0, first), min(max(last, first + 1), encoded.num_chunks)
-    quick = perturb_window(codec, chunks, encoded, sigma, noise, seed, draw, start, stop, top_k=0,
-                           should_stop=task.should_stop)
-    if quick is None:
-        return None
-    task.partial.emit(quick)
-    window = perturb_window(codec, chunks, encoded, sigma, noise, seed, draw, start, stop, top_k=TOP_K,
-                            should_stop=task.should_stop)
-    if window is None:
-        return None
-    windows = [window]
-    for a, b in remaining_ranges(encoded.num_chunks, start, stop):
-        w = perturb_window(codec, chunks, encoded, sigma, noise, seed, draw, a, b, top_k=TOP_K, should_stop=task.should_stop)
-        if w is None:
-            return None
-        windows.append(w)
-    return merge_windows(chunks, windows)
+          first_token: int, last_token: int):
+    """The chunks on screen first (reported as soon as they are decoded), then the whole text."""
+    return perturb_on_screen_first(codec, chunks, encoded, sigma, noise, seed, draw, first_token, last_token, TOP_K,
+                                   on_screen=task.partial.emit, should_stop=task.should_stop)
 
 
 class LivePanel(QWidget):
@@ -250,12 +234,11 @@ class LivePanel(QWidget):
         if self.task is not None:
             self.task.cancel()
         self.dirty = False
-        k = entry.codec.chunk_size
         first, last = self.original.visible_tokens()
         gen = self.generation
         key = (entry.path, entry.text_sha)
         task = Task("the live perturbation", _live, entry.codec, entry.chunks, entry.encoded, self.sigma(),
-                    self.noise_model(), self.seed.value(), self.draw, first // k, last // k + 1)
+                    self.noise_model(), self.seed.value(), self.draw, first, last)
         task.partial.connect(lambda window, g=gen, k_=key: self._window_arrived(g, k_, window))
         task.finished.connect(lambda result, g=gen, k_=key: self._whole_arrived(g, k_, result))
         task.failed.connect(self._failed)

@@ -23,7 +23,7 @@ from app.tokentext import TokenText, char_format
 from app.workers import Task
 from core.outputs.report import provenance_caption
 from core.engine.sweep import SweepResult
-from core.analyses.tokens import fragile_types
+from core.analyses.tokens import broken_count, fragile_types, most_fragile_occurrence
 from core.analyses.views import bucket_accuracy_table, critical_sigma_levels, token_story
 
 
@@ -227,7 +227,7 @@ class TokensPanel(QWidget):
         formats[-1] = char_format(PALETTE.never_broke, PALETTE.ink_soft)
         self.text.paint_levels(self.levels, formats)
         self.scale.set_sigmas(result.sigmas)
-        broke = int((self.levels >= 0).sum())
+        broke = broken_count(result)
         self.summary.setText(
             f"{result.codec_name} · {result.settings.noise} noise · {broke:,} of {chunks.num_tokens:,} tokens broke on the grid "
             f"(up to σ {fmt_sigma(result.sigmas[-1])})"
@@ -240,8 +240,9 @@ class TokensPanel(QWidget):
         task.failed.connect(self.workbench.error)
         self._task = task
         self.workbench.runner.start(task)
-        first = int(np.nanargmin(np.where(np.isnan(result.critical_sigma), np.inf, result.critical_sigma))) if broke else 0
-        self.show_token(first)
+        first = most_fragile_occurrence(result)
+        if first is not None:
+            self.show_token(first)
 
     def _plot_buckets(self, result: SweepResult) -> None:
         plot = self.bucket_plot.getPlotItem()
@@ -333,11 +334,9 @@ class TokensPanel(QWidget):
         if not rows or self.result is None:
             return
         tid = self.table.item(rows[0].row(), 0).data(Qt.ItemDataRole.UserRole)
-        matches = np.flatnonzero(self.result.chunks.token_ids == tid)
-        if len(matches) == 0:
+        index = most_fragile_occurrence(self.result, tid)
+        if index is None:
             return
-        crit = np.where(np.isnan(self.result.critical_sigma[matches]), np.inf, self.result.critical_sigma[matches])
-        index = int(matches[np.argmin(crit)])
         self.text.scroll_to_token(index, top=False)
         self.show_token(index)
 

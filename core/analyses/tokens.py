@@ -64,3 +64,18 @@ def fragile_types(result, tokenizer=None, min_count: int = 1) -> list[FragileTyp
         )
     out.sort(key=lambda f: (f.median_critical_sigma, np.nan_to_num(f.mean_critical_sigma, nan=np.inf), -f.count))
     return out
+
+
+def broken_count(result) -> int:
+    """Tokens that broke somewhere on the grid (a critical sigma)."""
+    return int((~np.isnan(result.critical_sigma)).sum())
+
+
+def most_fragile_occurrence(result, token_id: int | None = None) -> int | None:
+    """The token index with the lowest critical sigma, among the occurrences of `token_id`
+    (or the whole text); the first one on a tie or when none broke. None if the type is absent."""
+    crit = result.critical_sigma
+    where = np.arange(len(crit)) if token_id is None else np.flatnonzero(result.chunks.token_ids == int(token_id))
+    if len(where) == 0:
+        return None
+    return int(where[np.argmin(np.where(np.isnan(crit[where]), np.inf, crit[where]))])

@@ -157,6 +157,63 @@ def remaining_ranges(num_chunks: int, done_start: int, done_stop: int) -> list[t
     return out
 
 
+@dataclass(frozen=True)
+class WindowStep:
+    """One step of the live view's plan: decode chunks [start, stop) keeping `top_k`
+    alternatives; `show` marks the quick on-screen pass that is shown before the rest."""
+
+    start: int
+    stop: int
+    top_k: int
+    show: bool = False
+
+
+def on_screen_first(num_chunks: int, chunk_size: int, first_token: int, last_token: int,
+                    top_k: int = 5) -> list[WindowStep]:
+    """Which chunk windows the live view decodes, in which order: the chunks holding tokens
+    first_token..last_token argmax only (the quickest answer for the screen), then the same
+    chunks with their top-k alternatives, then the rest of the text below, then above.
+    The steps after the first tile the text, so their windows merge into the whole text."""
+    if num_chunks <= 0:
+        return []
+    first = max(0, first_token // chunk_size)
+    stop = min(max(last_token // chunk_size + 1, first + 1), num_chunks)
+    first = min(first, stop - 1)
+    steps = [WindowStep(first, stop, 0, show=True), WindowStep(first, stop, top_k)]
+    steps += [WindowStep(a, b, top_k) for a, b in remaining_ranges(num_chunks, first, stop)]
+    return steps
+
+
+def perturb_on_screen_first(
+    codec,
+    chunks: Chunks,
+    encoded: Encoded,
+    sigma: float,
+    noise: str,
+    seed: int,
+    draw: int,
+    first_token: int,
+    last_token: int,
+    top_k: int = 5,
+    on_screen: Callable[[LiveWindow], None] | None = None,
+    should_stop: Callable[[], bool] | None = None,
+) -> LivePerturbation | None:
+    """The whole-text perturbation, decoded in the order of `on_screen_first`; the quick
+    on-screen window goes to `on_screen` as soon as it is decoded. None if stopped."""
+    windows = []
+    for step in on_screen_first(encoded.num_chunks, codec.chunk_size, first_token, last_token, top_k):
+        window = perturb_window(codec, chunks, encoded, sigma, noise, seed, draw, step.start, step.stop, step.top_k,
+                                should_stop=should_stop)
+        if window is None:
+            return None
+        if step.show:
+            if on_screen is not None:
+                on_screen(window)
+        else:
+            windows.append(window)
+    return merge_windows(chunks, windows) if windows else None
+
+
 @dataclass
 class DecodedLayout:
     """The decoded text for display: original text for right tokens, the decoded piece for wrong ones."""
@@ -165,32 +222,37 @@ class DecodedLayout:
     spans: np.ndarray  # [T, 2] character spans of each token in `text`
 
 
-def decoded_layout(codec, chunks: Chunks, predicted: np.ndarray, correct: np.ndarray, token_start: int = 0) -> DecodedLayout:
-    """Text of tokens token_start..token_start+len(predicted) as decoded; right tokens keep their exact characters.
+def token_layout(text: str, spans: np.ndarray, predicted: np.ndarray, correct: np.ndarray,
+                 display: Callable[[int], str]) -> DecodedLayout:
+    """The text as decoded: token i is text[spans[i]] when correct[i], else display(predicted[i]).
 
-    The token spans tile the text, so each run of right tokens is one slice of it; only
-    the wrong tokens are visited one by one."""
-    text = chunks.text
-    n = len(predicted)
-    spans = chunks.spans[token_start : token_start + n]
-    lengths = (spans[:, 1] - spans[:, 0]).astype(np.int64)
-    pieces: list[str] = []
-    table = display_table(codec.tokenizer)
-    copied = 0  # tokens before this one are in `pieces`
-    wrong = np.flatnonzero(~np.asarray(correct, dtype=bool))
-    starts, ends = spans[:, 0].tolist(), spans[:, 1].tolist()
-    for j, tid in zip(wrong.tolist(), np.asarray(predicted)[wrong].tolist()):
-        if j > copied:
-            pieces.append(text[starts[copied] : ends[j - 1]])
-        piece = table[tid]
-        pieces.append(piece)
-        lengths[j] = len(piece)
-        copied = j + 1
-    if copied < n:
-        pieces.append(text[starts[copied] : ends[n - 1]])
+    Vectorised: every output character is gathered, by one index array, from the text
+    followed by the distinct wrong pieces (each looked up once), as UTF-32 code units."""
+    spans = np.clip(np.asarray(spans, dtype=np.int64).reshape(-1, 2), 0, len(text))  # as slicing would
+    n = len(spans)
+    if n == 0:
+        return DecodedLayout("", np.zeros((0, 2), dtype=np.int64))
+    wrong = ~np.asarray(correct, dtype=bool)
+    piece_ids, which = np.unique(np.asarray(predicted, dtype=np.int64)[wrong], return_inverse=True)
+    pieces = [display(int(t)) for t in piece_ids.tolist()]
+    piece_lengths = np.fromiter(map(len, pieces), dtype=np.int64, count=len(pieces))
+    piece_starts = np.cumsum(piece_lengths) - piece_lengths + len(text)
+    source = np.frombuffer((text + "".join(pieces)).encode("utf-32-le", "surrogatepass"), dtype="<u4")
+    starts = spans[:, 0].copy()
+    lengths = spans[:, 1] - spans[:, 0]
+    starts[wrong] = piece_starts[which]
+    lengths[wrong] = piece_lengths[which]
     ends = np.cumsum(lengths)
-    out_spans = np.stack([ends - lengths, ends], axis=1) if n else np.zeros((0, 2), dtype=np.int64)
-    return DecodedLayout("".join(pieces), out_spans)
+    out_starts = ends - lengths
+    index = np.repeat(starts - out_starts, lengths) + np.arange(int(ends[-1]), dtype=np.int64)
+    out = source[index].tobytes().decode("utf-32-le", "surrogatepass")
+    return DecodedLayout(out, np.stack([out_starts, ends], axis=1))
+
+
+def decoded_layout(codec, chunks: Chunks, predicted: np.ndarray, correct: np.ndarray, token_start: int = 0) -> DecodedLayout:
+    """Text of tokens token_start..token_start+len(predicted) as decoded; right tokens keep their exact characters."""
+    spans = chunks.spans[token_start : token_start + len(predicted)]
+    return token_layout(chunks.text, spans, predicted, correct, display_table(codec.tokenizer).__getitem__)
 
 
 def token_at(spans: np.ndarray, char_pos: int) -> int | None:

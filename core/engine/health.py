@@ -107,3 +107,22 @@ def expected_noise_norm(sigma: float, noise: str, encoded: Encoded) -> float:
     if noise == "posterior" and encoded.std is not None:
         return float(sigma) * float(encoded.std.square().sum(1).mean().sqrt())
     raise ValueError(f"no noise norm for noise model {noise!r}")
+
+
+@dataclass
+class GeometryCheck:
+    """The noise at a tolerance held against the nearest-neighbour half-distances."""
+
+    noise_norm: float  # expected_noise_norm at that sigma
+    closer: float  # fraction of distinct chunks whose half-distance is below the noise norm
+    limit: str  # "geometry" when most chunks' perturbations reach past the midpoint, else "decoder"
+
+
+def geometry_check(health: LatentHealth, sigma: float, noise: str, encoded: Encoded) -> GeometryCheck | None:
+    """Is the latent geometry or the decoder the limit at this sigma? None without two distinct chunks."""
+    half = health.nn_half_distance
+    if len(half) == 0:
+        return None
+    norm = expected_noise_norm(sigma, noise, encoded)
+    closer = float((half < norm).mean())
+    return GeometryCheck(norm, closer, "geometry" if closer > 0.5 else "decoder")
