@@ -141,7 +141,7 @@ class Screenshot:
                     return
             elif self.view == "compare":
                 c = w.compare
-                if c.comparison is None or c.is_running() or (c._view_task is not None and not c._view_task.done.is_set()):
+                if c.comparison is None or c.is_running() or c.text_view_busy():
                     return
             elif self.view == "trend":
                 if w.trend.is_running() or not w.trend.points:

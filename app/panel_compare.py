@@ -1,132 +1,44 @@
 """Compare checkpoints: accuracy curves overlaid, the paired difference with its McNemar
 tests, tolerances side by side, and the text at one sigma marked where they disagree.
 
-Everything shown comes from `core.analyses.compare`; the panel only runs it in a worker and draws."""
+Everything shown comes from `core.analyses.compare` (and `core.analyses.compare_view` for the
+text); this panel holds the choice of checkpoints and settings, runs the comparison in a
+worker, and lays out the plots (app.panel_compare_plots), the table (app.panel_compare_table)
+and the text view (app.panel_compare_text)."""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Sequence
 
-import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
-from PySide6.QtGui import QColor, QIcon, QPixmap, QTextCharFormat
+from PySide6.QtGui import QColor, QIcon, QPixmap
 from PySide6.QtWidgets import (
-    QAbstractItemView, QCheckBox, QComboBox, QFrame, QHBoxLayout, QHeaderView, QLabel, QListWidget, QListWidgetItem,
-    QSplitter, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget,
+    QAbstractItemView, QCheckBox, QComboBox, QFrame, QHBoxLayout, QLabel, QListWidget, QListWidgetItem, QSplitter,
+    QWidget,
 )
 
 from app.controls import GridControls, caption, card, page_layout, run_controls
-from app.export import add_export_menu
-from app.plotaxes import use_sigma_axis
-from app.style import PALETTE, faded, fmt_percent, legend, pen, plot_widget
-from app.tokentext import TokenText, char_format
-from app.workers import Runner, Task
+from app.panel_compare_plots import ComparePlots
+from app.panel_compare_table import ToleranceTable
+from app.panel_compare_text import CompareTextView
+from app.style import PALETTE, codec_colour
+from app.workers import LatestTask, Runner, Task
 from core.codecs.contract import opened
-from core.analyses.compare import Comparison, compare_codecs, unit_correctness
+from core.analyses.compare import Comparison, compare_codecs
+from core.analyses.compare_view import SideBySide
 from core.errors import SettingsError
 from core.outputs.report import provenance_caption
-from core.engine.sweep import SweepResult, tolerance_text
 from core.engine.text import text_sha256
 
 DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 16, "spacing": "log", "zero": True, "repeats": 2, "seed": 0,
             "main_noise": "data-scale"}
-LEVELS = (0.999, 0.99, 0.9)
-LEVEL_NAMES = {0.999: "99.9 %", 0.99: "99 %", 0.9: "90 %"}
-# one colour per checkpoint; the first two (blue, amber) stay apart under red-green colour blindness
-CODEC_COLOURS = ("#2f6db5", "#c98a12", "#3b8f7c", "#8a5aa8", "#5d626a", "#b5527e")
-ONLY_A, ONLY_B, BOTH = 1, 2, 3
-WASH = {ONLY_A: "#d9e6f6", ONLY_B: "#f8e6bd", BOTH: "#ecebe6"}
-UNIT_PLURAL = {"token": "tokens", "character": "characters"}
-
-
-def codec_colour(index: int) -> str:
-    return CODEC_COLOURS[index % len(CODEC_COLOURS)]
-
-
 
 
 def _swatch(colour: str, size: int = 10) -> QIcon:
     pixmap = QPixmap(size, size)
     pixmap.fill(QColor(colour))
     return QIcon(pixmap)
-
-
-def tolerance_label(t: dict) -> str:
-    """How a tolerance stored as a dict ({"sigma", "status"}) reads in a table cell."""
-    return tolerance_text(t["sigma"], t["status"])
-
-
-def mark_formats() -> dict[int, QTextCharFormat]:
-    """Only-A-right: blue wash, solid underline; only-B-right: amber wash, wavy underline
-    (colour and line shape both differ, so neither depends on seeing hue); both wrong: faint."""
-    a = char_format(WASH[ONLY_A], PALETTE.ink, underline=codec_colour(0))
-    b = char_format(WASH[ONLY_B], PALETTE.ink, underline=codec_colour(1))
-    b.setUnderlineStyle(QTextCharFormat.UnderlineStyle.WaveUnderline)
-    both = char_format(None, PALETTE.ink_faint)
-    return {ONLY_A: a, ONLY_B: b, BOTH: both}
-
-
-# ---- the side-by-side text, built in a worker ---------------------------------------------
-
-@dataclass
-class SidePane:
-    text: str  # the text as this checkpoint decoded it (right tokens keep their characters)
-    spans: np.ndarray  # [T, 2] each token's characters in `text`
-    levels: np.ndarray  # [T] 0, ONLY_A, ONLY_B or BOTH
-    correct: np.ndarray  # [T] bool, this checkpoint at this sigma (repeat 0)
-
-
-@dataclass
-class SideBySide:
-    sigma_index: int
-    pair_index: int
-    unit: str
-    a: SidePane
-    b: SidePane
-
-
-def _token_levels(unit_levels: np.ndarray, result: SweepResult, unit: str) -> np.ndarray:
-    """Marks on one checkpoint's tokens: the unit's own mark, or for characters the strongest
-    mark among the characters the token holds (only-A, then only-B, then both)."""
-    if unit == "token":
-        return unit_levels.astype(np.int8)
-    spans = result.chunks.spans
-    n = len(unit_levels)
-    levels = np.zeros(len(spans), dtype=np.int8)
-    starts, ends = spans[:, 0].astype(np.int64), spans[:, 1].astype(np.int64)
-    empty = ends <= starts
-    probe_start = np.where(empty, np.minimum(starts, max(n - 1, 0)), starts)
-    probe_end = np.where(empty, np.minimum(starts, max(n - 1, 0)) + 1, ends)
-    for mark in (BOTH, ONLY_B, ONLY_A):  # later marks win
-        has = np.concatenate([[0], np.cumsum(unit_levels == mark)])
-        hit = has[np.minimum(probe_end, n)] - has[np.minimum(probe_start, n)] > 0
-        levels[hit] = mark
-    return levels
-
-
-def _pane(result: SweepResult, sigma_index: int, levels: np.ndarray) -> SidePane:
-    correct = unit_correctness(result, sigma_index, "token")
-    text, spans = result.chunks.text, result.chunks.spans
-    decoded = result.decoded[:, sigma_index]
-    pieces = [text[a:b] if ok else result.display(d) for (a, b), ok, d in zip(spans.tolist(), correct.tolist(), decoded.tolist())]
-    lengths = np.fromiter((len(p) for p in pieces), dtype=np.int64, count=len(pieces))
-    ends = np.cumsum(lengths)
-    out_spans = np.stack([ends - lengths, ends], axis=1) if len(pieces) else np.zeros((0, 2), dtype=np.int64)
-    return SidePane("".join(pieces), out_spans, levels, correct)
-
-
-def side_by_side(task: Task | None, a: SweepResult, b: SweepResult, sigma_index: int, pair_index: int,
-                 unit: str) -> SideBySide:
-    ca, cb = unit_correctness(a, sigma_index, unit), unit_correctness(b, sigma_index, unit)
-    unit_levels = np.zeros(len(ca), dtype=np.int8)
-    unit_levels[ca & ~cb] = ONLY_A
-    unit_levels[~ca & cb] = ONLY_B
-    unit_levels[~ca & ~cb] = BOTH
-    return SideBySide(sigma_index, pair_index, unit,
-                      _pane(a, sigma_index, _token_levels(unit_levels, a, unit)),
-                      _pane(b, sigma_index, _token_levels(unit_levels, b, unit)))
 
 
 def _compare(task: Task, codecs: list, text: str, sigmas: tuple[float, ...], repeats: int, seed: int, main_noise: str,
@@ -137,8 +49,6 @@ def _compare(task: Task, codecs: list, text: str, sigmas: tuple[float, ...], rep
         on_sweep=lambda noise, result: task.partial.emit(f"{result.codec_name} swept under {noise} noise"),
     )
 
-
-# ---- the panel ----------------------------------------------------------------------------
 
 class ComparePanel(QWidget):
     """Compare two or more loaded checkpoints on the current text.
@@ -159,14 +69,7 @@ class ComparePanel(QWidget):
         self.text = ""
         self.text_source = ""
         self.comparison: Comparison | None = None
-        self.view: SideBySide | None = None
-        self.log_x = True
-        self._run_task: Task | None = None
-        self._run_generation = 0
-        self._run_key: tuple = ()
-        self._view_task: Task | None = None
-        self._view_generation = 0
-        self._syncing_scroll = False
+        self.runs = LatestTask(self.runner, self)
         self._build()
         self.restore(DEFAULTS)
         self._sync_controls()
@@ -216,7 +119,7 @@ class ComparePanel(QWidget):
         row.addWidget(self.progress, 1)
         self.log_box = QCheckBox("log σ axis")
         self.log_box.setChecked(True)
-        self.log_box.toggled.connect(self._log_toggled)
+        self.log_box.toggled.connect(lambda on: self.plot_pair.set_log_x(on))
         row.addWidget(self.log_box)
         cv.addWidget(g)
         outer.addWidget(controls)
@@ -246,102 +149,31 @@ class ComparePanel(QWidget):
         tl = QHBoxLayout(top)
         tl.setContentsMargins(0, 0, 0, 0)
         tl.setSpacing(10)
-        self.accuracy_plot = plot_widget("Token accuracy (Wilson 95 % band)", "σ", "token accuracy")
-        self.difference_plot = plot_widget("Paired difference B − A", "σ", "B − A, percentage points")
-        for plot in (self.accuracy_plot, self.difference_plot):
-            use_sigma_axis(plot)
-        self.difference_plot.getPlotItem().setXLink(self.accuracy_plot.getPlotItem())
-        for plot, name in ((self.accuracy_plot, "compare-accuracy"), (self.difference_plot, "compare-difference")):
-            plot.setObjectName("card")
-            add_export_menu(plot, self.caption, name)
-            plot.scene().sigMouseClicked.connect(lambda ev, p=plot: self._plot_clicked(p, ev))
+        self.plot_pair = ComparePlots(self.caption, lambda index: self.sigma_box.setCurrentIndex(index))
+        self.accuracy_plot, self.difference_plot = self.plot_pair.widgets()
         tl.addWidget(self.accuracy_plot, 5)
         tl.addWidget(self.difference_plot, 5)
-        table_box = QVBoxLayout()
-        table_box.setSpacing(4)
-        table_box.addWidget(caption("Tolerances side by side", "title"))
-        self.table = QTableWidget()
-        self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
-        self.table.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
-        self.table.setFocusPolicy(Qt.FocusPolicy.NoFocus)
-        self.table.verticalHeader().setDefaultSectionSize(22)
-        self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
-        self.table.horizontalHeader().setTextElideMode(Qt.TextElideMode.ElideMiddle)
-        self.table.setVerticalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAsNeeded)
-        self.table.setToolTip("tolerance: the largest σ before token accuracy first drops below the level, interpolated on "
-                              "the grid; absolute σ depends on the latent's scale, relative (data-scale) σ does not")
-        table_box.addWidget(self.table)
-        self.table_note = caption("")
-        self.table_note.setWordWrap(True)
-        table_box.addWidget(self.table_note)
-        table_box.addStretch(1)
-        table_widget = QWidget()
-        table_widget.setLayout(table_box)
-        table_widget.setMinimumWidth(330)
-        tl.addWidget(table_widget, 4)
+        self.tolerance_table = ToleranceTable()
+        self.table = self.tolerance_table.table
+        tl.addWidget(self.tolerance_table, 4)
 
-        bottom, bl = card(margins=(12, 8), spacing=6)
-        head = QHBoxLayout()
-        head.setSpacing(8)
-        head.addWidget(caption("Where they differ", "title"))
-        head.addSpacing(6)
-        head.addWidget(caption("at σ"))
-        self.sigma_box = QComboBox()
-        self.sigma_box.setMinimumWidth(90)
-        self.sigma_box.currentIndexChanged.connect(lambda _i: self._request_view())
-        head.addWidget(self.sigma_box)
-        head.addWidget(caption("B ="))
-        self.pair_box = QComboBox()
-        self.pair_box.setMinimumWidth(150)
-        self.pair_box.currentIndexChanged.connect(lambda _i: self._request_view())
-        head.addWidget(self.pair_box)
-        head.addStretch(1)
-        self.legend_a = QLabel("")
-        self.legend_b = QLabel("")
-        self.legend_both = QLabel("")
-        for label in (self.legend_a, self.legend_b, self.legend_both):
-            label.setTextFormat(Qt.TextFormat.RichText)
-            head.addWidget(label)
-        bl.addLayout(head)
-        self.view_note = caption("")
-        bl.addWidget(self.view_note)
-        panes = QSplitter(Qt.Orientation.Horizontal)
-        panes.setChildrenCollapsible(False)
-        self.pane_titles: list[QLabel] = []
-        self.texts: list[TokenText] = []
-        for side in range(2):
-            box = QWidget()
-            v = QVBoxLayout(box)
-            v.setContentsMargins(0, 0, 0, 0)
-            v.setSpacing(3)
-            title = QLabel("")
-            title.setTextFormat(Qt.TextFormat.RichText)
-            v.addWidget(title)
-            text = TokenText("Run a comparison to see the text each checkpoint decodes.")
-            text.tooltip_for = lambda token, s=side: self._tooltip(s, token)
-            v.addWidget(text, 1)
-            panes.addWidget(box)
-            self.pane_titles.append(title)
-            self.texts.append(text)
-        for side in range(2):
-            self.texts[side].verticalScrollBar().valueChanged.connect(lambda _v, s=side: self._sync_scroll(s))
-        bl.addWidget(panes, 1)
+        self.text_view = CompareTextView(self.runner)
+        self.text_view.error.connect(self.error)
+        self.text_view.ready.connect(self.text_view_ready)
+        self.text_view.sigma_changed.connect(self.plot_pair.move_selected)
+        tv = self.text_view
+        self.sigma_box, self.pair_box, self.texts = tv.sigma_box, tv.pair_box, tv.texts
+        self.legend_a, self.legend_b, self.legend_both = tv.legend_a, tv.legend_b, tv.legend_both
 
         split = QSplitter(Qt.Orientation.Vertical)
         split.setChildrenCollapsible(False)
         split.addWidget(top)
-        split.addWidget(bottom)
+        split.addWidget(self.text_view)
         split.setStretchFactor(0, 5)
         split.setStretchFactor(1, 4)
         split.setSizes([420, 340])
         outer.addWidget(split, 1)
-
-        self.selected_lines = []
-        for plot in (self.accuracy_plot, self.difference_plot):
-            line = pg.InfiniteLine(angle=90, movable=False, pen=pen(PALETTE.ink_soft, 1, Qt.PenStyle.DashLine))
-            line.setVisible(False)
-            plot.getPlotItem().addItem(line, ignoreBounds=True)
-            self.selected_lines.append(line)
+        self.plot_pair.add_selected_lines()
 
     # ---- inputs and settings -------------------------------------------------------------
 
@@ -401,7 +233,7 @@ class ComparePanel(QWidget):
     # ---- running -------------------------------------------------------------------------
 
     def is_running(self) -> bool:
-        return self._run_task is not None
+        return self.runs.running()
 
     def run(self) -> bool:
         """Start a comparison of the ticked checkpoints; a running one is superseded."""
@@ -417,52 +249,35 @@ class ComparePanel(QWidget):
         except SettingsError as exc:
             self.error.emit(str(exc))
             return False
-        if self._run_task is not None:
-            self._run_task.cancel()
-        self._run_generation += 1
-        gen = self._run_generation
-        self._run_key = self._inputs_key(codecs)
+        key = self._inputs_key(codecs)
         s = self.settings_dict()
         task = Task("the comparison", _compare, codecs, self.text, sigmas, s["repeats"], s["seed"], s["main_noise"],
                     self.text_source)
-        task.progress.connect(lambda done, total, g=gen: self._progress(g, done, total))
-        task.partial.connect(lambda message, g=gen: self._partial(g, message))
-        task.finished.connect(lambda result, g=gen, key=self._run_key: self._finished(g, key, result))
-        task.failed.connect(lambda message, g=gen: self._failed(g, message))
-        task.cancelled.connect(lambda g=gen: self._cancelled(g))
-        self._run_task = task
+        self.runs.start(task, progress=self._progress, partial=self._partial,
+                        finished=lambda result, k=key: self._finished(k, result), failed=self._failed,
+                        cancelled=self._cancelled)
         self.progress.setValue(0)
         self.status.setText(f"comparing {len(codecs)} checkpoints on {len(sigmas)} σ × {s['repeats']} repeats, "
                             "under data-scale and isotropic noise…")
-        self.runner.start(task)
         self._sync_controls()
         self.running_changed.emit(True)
         return True
 
     def cancel(self) -> None:
-        if self._run_task is not None:
-            self._run_task.cancel()
+        self.runs.cancel()
 
-    def _current(self, gen: int) -> bool:
-        return gen == self._run_generation
+    def _progress(self, done: int, total: int) -> None:
+        self.progress.setMaximum(max(total, 1))
+        self.progress.setValue(min(done, max(total, 1)))
 
-    def _progress(self, gen: int, done: int, total: int) -> None:
-        if self._current(gen):
-            self.progress.setMaximum(max(total, 1))
-            self.progress.setValue(min(done, max(total, 1)))
-
-    def _partial(self, gen: int, message: str) -> None:
-        if self._current(gen):
-            self.status.setText(f"comparing… {message}")
+    def _partial(self, message: str) -> None:
+        self.status.setText(f"comparing… {message}")
 
     def _over(self) -> None:
-        self._run_task = None
         self._sync_controls()
         self.running_changed.emit(False)
 
-    def _finished(self, gen: int, key: tuple, comparison: Comparison) -> None:
-        if not self._current(gen):
-            return  # a newer run superseded this one
+    def _finished(self, key: tuple, comparison: Comparison) -> None:
         self._over()
         self.progress.setValue(self.progress.maximum())
         if key[0] != (text_sha256(self.text) if self.text else ""):
@@ -471,42 +286,37 @@ class ComparePanel(QWidget):
         self.show_comparison(comparison)
         self.comparison_ready.emit(comparison)
 
-    def _failed(self, gen: int, message: str) -> None:
-        if self._current(gen):
-            self._over()
-            self.progress.setValue(0)
-            self.status.setText("the comparison stopped with an error.")
-            self.error.emit(message)
+    def _failed(self, message: str) -> None:
+        self._over()
+        self.progress.setValue(0)
+        self.status.setText("the comparison stopped with an error.")
+        self.error.emit(message)
 
-    def _cancelled(self, gen: int) -> None:
-        if self._current(gen):
-            self._over()
-            self.progress.setValue(0)
-            self.status.setText("comparison cancelled; nothing was kept." +
-                                (" Showing the previous comparison." if self.comparison is not None else ""))
+    def _cancelled(self) -> None:
+        self._over()
+        self.progress.setValue(0)
+        self.status.setText("comparison cancelled; nothing was kept." +
+                            (" Showing the previous comparison." if self.comparison is not None else ""))
 
     def _sync_controls(self) -> None:
-        running = self._run_task is not None
         n = len(self.selected_codecs())
         self.run_button.setEnabled(n >= 2 and bool(self.text))
         self.run_button.setToolTip("" if n >= 2 else "tick at least two checkpoints")
-        self.cancel_button.setEnabled(running)
+        self.cancel_button.setEnabled(self.runs.running())
 
     # ---- showing a result ----------------------------------------------------------------
 
     def set_comparison(self, comparison: Comparison | None) -> None:
         """Show a ready-made comparison (a reopened workspace), without recomputing."""
-        if self._run_task is not None:
-            self._run_task.cancel()
-            self._run_generation += 1
+        if self.runs.drop():
             self._over()
         self.show_comparison(comparison)
 
     def show_comparison(self, comparison: Comparison | None) -> None:
         self.comparison = comparison
-        self._draw_plots()
-        self._fill_table()
-        self._fill_view_controls()
+        self.plot_pair.draw(comparison)
+        self.tolerance_table.fill(comparison)
+        self.text_view.show_comparison(comparison)
         if comparison is None:
             self.warning.hide()
             self.status.setText("Tick two or more checkpoints and press Compare: each is swept on the same text and "
@@ -524,142 +334,11 @@ class ComparePanel(QWidget):
             + f" · {main[0].chunks.num_tokens:,} tokens for A"
         )
 
-    def _sigma_unit(self) -> str:
-        return "relative σ" if self.comparison is None or self.comparison.main_noise == "data-scale" else "absolute σ"
-
-    def _draw_plots(self) -> None:
-        p = PALETTE
-        acc_item, diff_item = self.accuracy_plot.getPlotItem(), self.difference_plot.getPlotItem()
-        for item, keep_line in ((acc_item, self.selected_lines[0]), (diff_item, self.selected_lines[1])):
-            for child in list(item.items):
-                if child is not keep_line:
-                    item.removeItem(child)
-            if item.legend is not None:
-                item.legend.clear()
-        c = self.comparison
-        if c is None:
-            for item in (acc_item, diff_item):
-                item.setLogMode(x=False)
-            return
-        main = c.main_sweeps()
-        log = self.log_x and any(s > 0 for s in main[0].sigmas)
-        for item in (acc_item, diff_item):
-            item.setLogMode(x=log)
-            item.setLabel("bottom", f"{self._sigma_unit()} ({c.main_noise} noise)", color=p.ink_soft, **{"font-size": "8pt"})
-        legend(acc_item, offset=(10, -10))
-        for level in LEVELS:
-            acc_item.addItem(pg.InfiniteLine(pos=level, angle=0, movable=False, pen=pen(p.ink_faint, 1, Qt.PenStyle.DotLine)),
-                             ignoreBounds=True)
-        for i, r in enumerate(main):
-            sigmas = np.asarray(r.sigmas, dtype=np.float64)
-            keep = sigmas > 0 if log else np.ones(len(sigmas), dtype=bool)
-            x = sigmas[keep]
-            acc = np.array([cv.token_accuracy for cv in r.curves])[keep]
-            low = np.array([cv.accuracy_low for cv in r.curves])[keep]
-            high = np.array([cv.accuracy_high for cv in r.curves])[keep]
-            colour = codec_colour(i)
-            lo_item = pg.PlotDataItem(x, low, pen=pen(faded(colour, 0), 0))
-            hi_item = pg.PlotDataItem(x, high, pen=pen(faded(colour, 0), 0))
-            acc_item.addItem(lo_item)
-            acc_item.addItem(hi_item)
-            acc_item.addItem(pg.FillBetweenItem(lo_item, hi_item, brush=faded(colour, 55)))
-            role = "A" if i == 0 else ("B" if len(main) == 2 else f"B{i}")
-            acc_item.addItem(pg.PlotDataItem(x, acc, pen=pen(colour, 2), symbol="o", symbolSize=4, symbolBrush=colour,
-                                             symbolPen=None, name=f"{role}: {r.codec_name}"))
-        acc_item.setYRange(0, 1.02, padding=0)
-
-        if len(c.paired) > 1:
-            legend(diff_item, offset=(-10, 10))
-        diff_item.addItem(pg.InfiniteLine(pos=0, angle=0, movable=False, pen=pen(p.ink_faint, 1)), ignoreBounds=True)
-        for j, pair in enumerate(c.paired):
-            colour = codec_colour(j + 1)
-            sigmas = np.array([row.sigma for row in pair.rows])
-            keep = sigmas > 0 if log else np.ones(len(sigmas), dtype=bool)
-            x = sigmas[keep]
-            diff = np.array([row.difference * 100 for row in pair.rows])[keep]
-            significant = np.array(pair.significant(0.05))[keep]
-            diff_item.addItem(pg.PlotDataItem(x, diff, pen=pen(colour, 2), name=f"{pair.name_b} − {pair.name_a}"))
-            if (~significant).any():
-                diff_item.addItem(pg.PlotDataItem(x[~significant], diff[~significant], pen=None, symbol="o", symbolSize=6,
-                                                  symbolBrush=p.surface, symbolPen=pen(colour, 1.2)))
-            if significant.any():
-                diff_item.addItem(pg.PlotDataItem(x[significant], diff[significant], pen=None, symbol="d", symbolSize=11,
-                                                  symbolBrush=p.ink, symbolPen=pen(p.surface, 1)))
-        unit = c.paired[0].unit if c.paired else "token"
-        diff_item.setLabel("left", f"B − A, percentage points (per {unit})", color=p.ink_soft, **{"font-size": "8pt"})
-        any_significant = any(any(pair.significant(0.05)) for pair in c.paired)
-        diff_item.setTitle(
-            f"<span style='color:{p.ink}; font-size:9pt; font-weight:600'>Paired difference B − A</span>"
-            f"<span style='color:{p.ink_soft}; font-size:8pt'>&nbsp;&nbsp;&nbsp;◆ McNemar p &lt; 0.05"
-            f"{'' if any_significant else ' (none on this grid)'}&nbsp;&nbsp;○ not significant</span>", justify="left")
-        acc_item.enableAutoRange(x=True)
-        diff_item.enableAutoRange(y=True)
-        self._move_selected_line()
-
-    def _fill_table(self) -> None:
-        t = self.table
-        t.clear()
-        c = self.comparison
-        if c is None:
-            t.setRowCount(0)
-            t.setColumnCount(0)
-            t.setFixedHeight(60)
-            self.table_note.setText("")
-            return
-        rows = (["sha256", "latent RMS", "accuracy, σ = 0"]
-                + [f"absolute {LEVEL_NAMES[l]}" for l in LEVELS]
-                + [f"relative {LEVEL_NAMES[l]}" for l in LEVELS])
-        t.setRowCount(len(rows))
-        t.setColumnCount(len(c.tolerances))
-        t.setVerticalHeaderLabels(rows)
-        for j, row in enumerate(c.tolerances):
-            role = "A" if j == 0 else ("B" if len(c.tolerances) == 2 else f"B{j}")
-            header = QTableWidgetItem(f"{role}\n{row.name}")
-            header.setToolTip(f"{row.name}\nsha256 {row.sha256}")
-            t.setHorizontalHeaderItem(j, header)
-            values = [row.sha256[:10], f"{row.latent_rms:.4g}", fmt_percent(row.accuracy_at_zero, 3)]
-            values += [tolerance_label(x) for x in row.absolute] + [tolerance_label(x) for x in row.data_scale]
-            for i, value in enumerate(values):
-                item = QTableWidgetItem(value)
-                item.setTextAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
-                if i >= 6:
-                    font = item.font()
-                    font.setBold(True)
-                    item.setFont(font)
-                if 3 <= i < 6 and c.scale_warning:
-                    item.setForeground(QColor(PALETTE.ink_faint))
-                    item.setToolTip("absolute σ: not comparable across these checkpoints, their latent scales differ")
-                t.setItem(i, j, item)
-        height = t.horizontalHeader().sizeHint().height() + sum(t.rowHeight(i) for i in range(t.rowCount())) + 2 * t.frameWidth()
-        t.setFixedHeight(height + 2)
-        self.table_note.setText(
-            "relative σ is scale-free and compares fairly; absolute σ grows with the latent's RMS. "
-            "“> x”: never dropped on the grid." + (" Absolute columns greyed: the scales differ." if c.scale_warning else "")
-        )
-
     # ---- the side-by-side text -----------------------------------------------------------
 
-    def _fill_view_controls(self) -> None:
-        c = self.comparison
-        for box in (self.sigma_box, self.pair_box):
-            box.blockSignals(True)
-            box.clear()
-        if c is not None:
-            main = c.main_sweeps()
-            for s in main[0].sigmas:
-                self.sigma_box.addItem(f"{s:.4g}")
-            for pair in c.paired:
-                self.pair_box.addItem(pair.name_b)
-            # start at the first σ where A and B differ significantly, else where they disagree most
-            rows = c.paired[0].rows if c.paired else []
-            significant = [i for i, r in enumerate(rows) if r.pvalue < 0.05]
-            start = significant[0] if significant else (int(np.argmax([r.a_only + r.b_only for r in rows])) if rows else 0)
-            self.sigma_box.setCurrentIndex(start)
-            self.pair_box.setCurrentIndex(0)
-        for box in (self.sigma_box, self.pair_box):
-            box.blockSignals(False)
-        self.pair_box.setEnabled(c is not None and len(c.paired) > 1)
-        self._request_view()
+    @property
+    def view(self) -> SideBySide | None:
+        return self.text_view.view
 
     def set_sigma_index(self, index: int) -> None:
         self.sigma_box.setCurrentIndex(index)
@@ -667,141 +346,12 @@ class ComparePanel(QWidget):
     def set_pair_index(self, index: int) -> None:
         self.pair_box.setCurrentIndex(index)
 
-    def _request_view(self) -> None:
-        self._view_generation += 1
-        gen = self._view_generation
-        if self._view_task is not None:
-            self._view_task.cancel()
-        c = self.comparison
-        i, j = self.sigma_box.currentIndex(), self.pair_box.currentIndex()
-        if c is None or i < 0 or j < 0 or j >= len(c.paired):
-            self.view = None
-            for side in range(2):
-                self.texts[side].set_content("", np.zeros((0, 2), dtype=np.int64))
-                self.pane_titles[side].setText("")
-            for label in (self.legend_a, self.legend_b, self.legend_both):
-                label.setText("")
-            self.view_note.setText("")
-            self._move_selected_line()
-            return
-        main = c.main_sweeps()
-        a, b = main[0], main[j + 1]
-        self.view_note.setText("decoding the text at this σ…")
-        task = Task("the side-by-side text", side_by_side, a, b, i, j, c.paired[j].unit)
-        task.finished.connect(lambda view, g=gen, cmp=c: self._view_arrived(g, cmp, view))
-        task.failed.connect(self.error)
-        self._view_task = task
-        self.runner.start(task)
-        self._move_selected_line()
-
-    def _view_arrived(self, gen: int, comparison: Comparison, view: SideBySide) -> None:
-        if gen != self._view_generation or comparison is not self.comparison:
-            return
-        self._view_task = None
-        self.view = view
-        c = comparison
-        pair = c.paired[view.pair_index]
-        row = pair.rows[view.sigma_index]
-        formats = mark_formats()
-        names = (pair.name_a, pair.name_b)
-        for side, pane in enumerate((view.a, view.b)):
-            widget = self.texts[side]
-            bar = widget.verticalScrollBar()
-            fraction = bar.value() / bar.maximum() if bar.maximum() > 0 else 0.0
-            widget.set_content(pane.text, pane.spans)
-            widget.paint_levels(pane.levels, formats)
-            wrong = int((~pane.correct).sum())
-            role = "A" if side == 0 else "B"
-            self.pane_titles[side].setText(
-                f"<span style='color:{codec_colour(0 if side == 0 else view.pair_index + 1)}'>■</span> "
-                f"<b>{role} · {names[side]}</b> <span style='color:{PALETTE.ink_soft}'>— as decoded at σ "
-                f"{row.sigma:.4g} (repeat 0): {wrong:,} of {len(pane.correct):,} tokens wrong</span>"
-            )
-            self._syncing_scroll = True
-            widget.verticalScrollBar().setValue(int(round(fraction * widget.verticalScrollBar().maximum())))
-            self._syncing_scroll = False
-        units = UNIT_PLURAL[pair.unit]
-        self.legend_a.setText(
-            f"<span style='background:{WASH[ONLY_A]}'>&nbsp;only A right&nbsp;</span>"
-            f" <span style='color:{PALETTE.ink_soft}'>{row.a_only:,} {units}</span>")
-        self.legend_b.setText(
-            f"&nbsp;&nbsp;<span style='background:{WASH[ONLY_B]}'>&nbsp;only B right&nbsp;</span>"
-            f" <span style='color:{PALETTE.ink_soft}'>{row.b_only:,} {units}</span>")
-        self.legend_both.setText(f"&nbsp;&nbsp;<span style='color:{PALETTE.ink_faint}'>faint: both wrong</span>")
-        stars = "significant, p < 0.05" if row.pvalue < 0.05 else "not significant"
-        note = (f"paired per {pair.unit}: accuracy A {fmt_percent(row.accuracy_a, 3)}, B {fmt_percent(row.accuracy_b, 3)}; "
-                f"McNemar ({row.method}) p = {row.pvalue:.3g}, {stars}")
-        if pair.unit == "character":
-            note += (" · the checkpoints cut the text differently, so disagreement is marked on every token holding a "
-                     "character one got right and the other wrong")
-        self.view_note.setText(note)
-        self.text_view_ready.emit()
+    def text_view_busy(self) -> bool:
+        return self.text_view.busy()
 
     def marked_counts(self) -> tuple[int, int]:
         """How many tokens the text view marks, in A's pane, as only-A-right and only-B-right."""
-        if self.view is None:
-            return 0, 0
-        levels = self.view.a.levels
-        return int((levels == ONLY_A).sum()), int((levels == ONLY_B).sum())
-
-    def _tooltip(self, side: int, token: int) -> str:
-        view, c = self.view, self.comparison
-        if view is None or c is None or token is None:
-            return ""
-        main = c.main_sweeps()
-        result = main[0] if side == 0 else main[view.pair_index + 1]
-        pane = view.a if side == 0 else view.b
-        if not 0 <= token < len(pane.correct):
-            return ""
-        a, b = result.chunks.spans[token]
-        original = result.chunks.text[int(a):int(b)]
-        decoded = result.display(int(result.decoded[token, view.sigma_index]))
-        verdict = {ONLY_A: "only A got this right", ONLY_B: "only B got this right", BOTH: "both got this wrong"}.get(
-            int(pane.levels[token]), "")
-        line = f"{original!r}" + ("" if pane.correct[token] else f" → decoded {decoded!r}")
-        return f"{result.codec_name}: {line}" + (f"\n{verdict}" if verdict else "")
-
-    def _sync_scroll(self, side: int) -> None:
-        if self._syncing_scroll:
-            return
-        source, target = self.texts[side].verticalScrollBar(), self.texts[1 - side].verticalScrollBar()
-        if source.maximum() <= 0:
-            return
-        self._syncing_scroll = True
-        target.setValue(int(round(source.value() / source.maximum() * target.maximum())))
-        self._syncing_scroll = False
-
-    # ---- plot interaction ----------------------------------------------------------------
-
-    def _log_toggled(self, on: bool) -> None:
-        self.log_x = on
-        self._draw_plots()
-
-    def _move_selected_line(self) -> None:
-        c = self.comparison
-        i = self.sigma_box.currentIndex()
-        visible = c is not None and i >= 0
-        if visible:
-            sigma = c.main_sweeps()[0].sigmas[i]
-            log = self.log_x and any(s > 0 for s in c.main_sweeps()[0].sigmas)
-            visible = sigma > 0 or not log
-            if visible:
-                for line in self.selected_lines:
-                    line.setPos(np.log10(sigma) if log else sigma)
-        for line in self.selected_lines:
-            line.setVisible(visible)
-
-    def _plot_clicked(self, plot: pg.PlotWidget, event) -> None:
-        if event.button() != Qt.MouseButton.LeftButton or self.comparison is None:
-            return
-        vb = plot.getPlotItem().getViewBox()
-        if not vb.sceneBoundingRect().contains(event.scenePos()):
-            return
-        sigmas = np.asarray(self.comparison.main_sweeps()[0].sigmas, dtype=np.float64)
-        log = self.log_x and (sigmas > 0).any()
-        xv = vb.mapSceneToView(event.scenePos()).x()
-        xs = np.where(sigmas > 0, np.log10(np.maximum(sigmas, 1e-300)), -np.inf) if log else sigmas
-        self.sigma_box.setCurrentIndex(int(np.argmin(np.abs(xs - xv))))
+        return self.text_view.marked_counts()
 
     # ---- for export and reports ----------------------------------------------------------
 

@@ -20,7 +20,7 @@ import core
 from app.controls import GridControls, caption, card, page_layout, run_controls
 from app.export import add_export_menu
 from app.style import PALETTE, fmt_percent, legend, pen, plot_widget
-from app.workers import Runner, Task
+from app.workers import LatestTask, Runner, Task
 from core.errors import ChunkscopeError
 from core.engine.sweep import SweepSettings
 from core.engine.text import demo_text
@@ -89,8 +89,7 @@ class TrendPanel(QWidget):
         self.folder = ""
         self.points: list[TrendPoint] = []
         self.settings_used: SweepSettings | None = None
-        self._task: Task | None = None
-        self._generation = 0
+        self.runs = LatestTask(self.runner, self)
         self._build()
         self.restore(DEFAULTS)
         self._redraw()
@@ -191,7 +190,7 @@ class TrendPanel(QWidget):
             self.run_folder(folder)
 
     def is_running(self) -> bool:
-        return self._task is not None
+        return self.runs.running()
 
     def run_folder(self, path: str | Path) -> bool:
         """Measure every checkpoint in `path`; a running measurement is superseded."""
@@ -208,44 +207,31 @@ class TrendPanel(QWidget):
             except ChunkscopeError as exc:
                 self.error.emit(str(exc))
                 return False
-        if self._task is not None:
-            self._task.cancel()
-        self._generation += 1
-        gen = self._generation
         self.folder = folder
         self.settings_used = settings
         self.points = []
         self.folder_label.setText(f"{folder}  ·  {len(checkpoints)} checkpoints")
         self.folder_label.setToolTip(folder)
         task = Task("the training-run trend", _trend, folder, self.text, settings, self.text_source)
-        task.progress.connect(lambda done, total, g=gen: self._progress(g, done, total))
-        task.partial.connect(lambda point, g=gen: self._point(g, point))
-        task.finished.connect(lambda points, g=gen: self._finished(g, points))
-        task.failed.connect(lambda message, g=gen: self._failed(g, message))
-        task.cancelled.connect(lambda g=gen: self._cancelled(g))
-        self._task = task
+        self.runs.start(task, progress=self._progress, partial=self._point, finished=self._finished,
+                        failed=self._failed, cancelled=self._cancelled)
         self._expected = len(checkpoints)
         self.progress.setValue(0)
         self._redraw()
         self.status.setText(f"measuring {len(checkpoints)} checkpoints on {len(settings.sigmas)} σ × {settings.repeats} "
                             f"repeats ({settings.noise} noise)…")
-        self.runner.start(task)
         self._sync_controls()
         self.running_changed.emit(True)
         return True
 
     def cancel(self) -> None:
-        if self._task is not None:
-            self._task.cancel()
+        self.runs.cancel()
 
-    def _progress(self, gen: int, done: int, total: int) -> None:
-        if gen == self._generation:
-            self.progress.setMaximum(max(total, 1))
-            self.progress.setValue(min(done, max(total, 1)))
+    def _progress(self, done: int, total: int) -> None:
+        self.progress.setMaximum(max(total, 1))
+        self.progress.setValue(min(done, max(total, 1)))
 
-    def _point(self, gen: int, point: TrendPoint) -> None:
-        if gen != self._generation:
-            return
+    def _point(self, point: TrendPoint) -> None:
         self.points.append(point)
         self._redraw()
         self.status.setText(f"measured {len(self.points)} of {self._expected} checkpoints… latest: {point.name}"
@@ -253,43 +239,36 @@ class TrendPanel(QWidget):
         self.point_added.emit(point)
 
     def _over(self) -> None:
-        self._task = None
         self._sync_controls()
         self.running_changed.emit(False)
 
-    def _finished(self, gen: int, points: list[TrendPoint]) -> None:
-        if gen != self._generation:
-            return
+    def _finished(self, points: list[TrendPoint]) -> None:
         self._over()
         self.points = list(points)
         self.progress.setValue(self.progress.maximum())
         self._redraw()
         self.finished.emit(self.points)
 
-    def _failed(self, gen: int, message: str) -> None:
-        if gen == self._generation:
-            self._over()
-            self.progress.setValue(0)
-            self._redraw()
-            self.error.emit(message)
+    def _failed(self, message: str) -> None:
+        self._over()
+        self.progress.setValue(0)
+        self._redraw()
+        self.error.emit(message)
 
-    def _cancelled(self, gen: int) -> None:
-        if gen == self._generation:
-            self._over()
-            self.progress.setValue(0)
-            self._redraw()
-            self.status.setText(f"cancelled after {len(self.points)} checkpoints; the ones measured are shown.")
+    def _cancelled(self) -> None:
+        self._over()
+        self.progress.setValue(0)
+        self._redraw()
+        self.status.setText(f"cancelled after {len(self.points)} checkpoints; the ones measured are shown.")
 
     def _sync_controls(self) -> None:
-        self.cancel_button.setEnabled(self._task is not None)
+        self.cancel_button.setEnabled(self.runs.running())
 
     # ---- showing -------------------------------------------------------------------------
 
     def set_points(self, points: Sequence[TrendPoint], folder: str = "", settings: SweepSettings | None = None) -> None:
         """Show saved points (a reopened workspace) without measuring anything."""
-        if self._task is not None:
-            self._task.cancel()
-            self._generation += 1
+        if self.runs.drop():
             self._over()
         self.points = list(points)
         self.folder = folder or self.folder
@@ -302,7 +281,7 @@ class TrendPanel(QWidget):
         self._fill_table()
         self._draw_plots()
         points = self.points
-        if self._task is not None:
+        if self.runs.running():
             return
         if not points:
             self.status.setText("Choose a folder of checkpoints from one training run to follow accuracy and tolerance "

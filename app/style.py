@@ -142,6 +142,14 @@ def faded(colour: str, alpha: int) -> QColor:
     return c
 
 
+# one colour per compared checkpoint; the first two (blue, amber) stay apart under red-green colour blindness
+CODEC_COLOURS = ("#2f6db5", "#c98a12", "#3b8f7c", "#8a5aa8", "#5d626a", "#b5527e")
+
+
+def codec_colour(index: int) -> str:
+    return CODEC_COLOURS[index % len(CODEC_COLOURS)]
+
+
 def series_colours(n: int) -> list[str]:
     """n distinguishable colours for lines of one family (positions, buckets), from the colour map."""
     cmap = pg.colormap.get(COLORMAP)

@@ -122,3 +122,54 @@ class Runner(QObject):
         for task in self.running():
             task.cancel()
         return self.pool.waitForDone(timeout_ms)
+
+
+class LatestTask(QObject):
+    """One slot for one kind of work where the latest request wins: starting a task cancels
+    the one before, and only the latest task's signals reach the handlers, so a result for an
+    old setting is never shown. The slot is empty (`task` is None) before an ending handler
+    (finished, failed, cancelled) runs."""
+
+    def __init__(self, runner: Runner, parent: QObject | None = None):
+        super().__init__(parent)
+        self.runner = runner
+        self.task: Task | None = None
+
+    def running(self) -> bool:
+        return self.task is not None
+
+    def busy(self) -> bool:
+        """A task was started and its thread has not finished yet."""
+        return self.task is not None and not self.task.done.is_set()
+
+    def start(self, task: Task, *, progress: Callable | None = None, partial: Callable | None = None,
+              finished: Callable | None = None, failed: Callable | None = None,
+              cancelled: Callable | None = None) -> Task:
+        self.drop()
+        self.task = task
+        for signal, handler in ((task.progress, progress), (task.partial, partial)):
+            if handler is not None:
+                signal.connect(lambda *args, t=task, h=handler: h(*args) if t is self.task else None)
+        for signal, handler in ((task.finished, finished), (task.failed, failed), (task.cancelled, cancelled)):
+            signal.connect(lambda *args, t=task, h=handler: self._ended(t, h, args))
+        self.runner.start(task)
+        return task
+
+    def _ended(self, task: Task, handler: Callable | None, args: tuple) -> None:
+        if task is not self.task:
+            return  # superseded or dropped
+        self.task = None
+        if handler is not None:
+            handler(*args)
+
+    def cancel(self) -> None:
+        """Ask the running task to stop; its `cancelled` handler still runs."""
+        if self.task is not None:
+            self.task.cancel()
+
+    def drop(self) -> bool:
+        """Stop the running task and ignore whatever it still sends; True if there was one."""
+        task, self.task = self.task, None
+        if task is not None:
+            task.cancel()
+        return task is not None

@@ -60,7 +60,7 @@ def test_reference_is_the_first_opened_until_the_user_picks_one(compare_panel, t
 
 
 def test_compare_panel_runs_and_its_table_holds_the_comparisons_numbers(compare_panel, two_codecs, qtbot):
-    from app.panel_compare import tolerance_label
+    from app.panel_compare_table import tolerance_label
 
     panel = compare_panel
     panel.set_inputs(list(two_codecs), FIXTURE_TEXT, "fixture")
@@ -128,13 +128,14 @@ def test_warning_banner_when_latent_scales_differ(compare_panel, tokenizer):
 def _wait_view(panel, qtbot, index):
     with qtbot.waitSignal(panel.text_view_ready, timeout=10_000):
         if panel.sigma_box.currentIndex() == index:
-            panel._request_view()
+            panel.text_view.request()
         else:
             panel.set_sigma_index(index)
 
 
 def test_side_by_side_marks_where_the_models_differ(compare_panel, two_codecs, qtbot):
-    from app.panel_compare import ONLY_A, ONLY_B, WASH
+    from app.panel_compare_text import WASH
+    from core.analyses.compare_view import ONLY_A, ONLY_B
 
     comparison = compare_codecs(list(two_codecs), FIXTURE_TEXT, sigmas=GRID, repeats=1)
     rows = comparison.paired[0].rows
