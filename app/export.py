@@ -20,6 +20,7 @@ from PySide6.QtWidgets import (
     QComboBox, QGraphicsItem, QDialog, QDialogButtonBox, QFileDialog, QFormLayout, QLabel, QMenu, QMessageBox, QSpinBox, QWidget,
 )
 
+from app.messages import error_text
 from app.style import PALETTE, SANS
 from core.outputs.files import staged_file
 
@@ -203,7 +204,7 @@ def export_plot(
         if fmt == "png":
             image = render_png(target, int(width), int(dpi), caption)
             if not image.save(str(tmp), "PNG"):
-                raise OSError(f"{path.name} could not be written.")
+                raise OSError(f"{path} could not be written.")
         else:
             tmp.write_text(render_svg(target, caption), encoding="utf-8")
     return path
@@ -281,7 +282,7 @@ def save_plot_dialog(target: Plottable, caption_fn: Callable[[], str] | None = N
     try:
         return export_plot(target, path, width=width, dpi=dpi, caption=caption or "", force=force)
     except (OSError, ValueError) as exc:
-        QMessageBox.warning(parent, "Plot not saved", str(exc))
+        QMessageBox.warning(parent, "Plot not saved", error_text(exc, path, "saved"))
         return None
 
 

@@ -1,24 +1,25 @@
 """What the window's File menu calls to save and reopen results: thin wrappers over core.
 
-Each function returns data or raises the core error (ChunkscopeError, or FileExistsError
-when a file is in the way and force is False) whose message the window shows verbatim.
-The `ask_*` helpers add the file dialogs and the question before replacing a file."""
+Each function returns data or raises a ChunkscopeError whose message the window shows
+verbatim; a system error core did not already put into words (OSError) becomes one
+sentence naming the user's path (`error_text`). The `ask_*` helpers add the file dialogs
+and the question before replacing a file."""
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import Sequence
 
 from PySide6.QtWidgets import QFileDialog, QWidget
 
 from app.export import confirm_overwrite
+from app.messages import user_path
 from core.analyses.compare import Comparison, read_comparison
 from core.errors import ChunkscopeError
 from core.outputs.report import build_report
 from core.outputs.files import write_text_atomic
 from core.engine.sweep import SweepResult, read_sweep
-from core.analyses.trend import TrendPoint
+from core.analyses.trend import TrendPoint, read_trend
 from core.outputs.workspace import WORKSPACE_SUFFIX, Workspace, load_workspace, save_workspace
 
 REPORT_FILTER = "HTML report (*.html)"
@@ -38,7 +39,8 @@ def save_report(path: str | Path, sweeps: Sequence[SweepResult] = (), comparison
         raise
     except ValueError:
         raise ChunkscopeError("there is nothing to report yet: run a sweep, a comparison or a training-run trend first.") from None
-    return write_text_atomic(path, html, force=force)
+    with user_path(path, "saved"):
+        return write_text_atomic(path, html, force=force)
 
 
 def make_workspace(codecs: Sequence = (), text: str = "", text_source: str = "", settings: dict | None = None,
@@ -56,42 +58,33 @@ def save_workspace_file(workspace: Workspace, path: str | Path, force: bool = Fa
     path = Path(path)
     if path.suffix != WORKSPACE_SUFFIX:
         path = path.with_name(path.name + WORKSPACE_SUFFIX)
-    return save_workspace(workspace, path, force=force)
+    with user_path(path, "saved"):
+        return save_workspace(workspace, path, force=force)
 
 
 def open_workspace_file(path: str | Path) -> tuple[Workspace, list[str]]:
     """The workspace and one sentence per referenced checkpoint that is gone or changed."""
-    workspace = load_workspace(path)
-    return workspace, workspace.checkpoint_problems()
+    with user_path(path, "opened"):
+        workspace = load_workspace(path)
+        return workspace, workspace.checkpoint_problems()
 
 
 def open_sweep_folder(path: str | Path) -> SweepResult:
     """A sweep folder written by `chunkscope sweep --out` (or by the workbench)."""
-    return read_sweep(path)
+    with user_path(path, "opened"):
+        return read_sweep(path)
 
 
 def open_comparison_folder(path: str | Path) -> Comparison:
     """A comparison folder written by `chunkscope compare --out`."""
-    return read_comparison(path)
+    with user_path(path, "opened"):
+        return read_comparison(path)
 
 
 def open_trend_file(path: str | Path) -> list[TrendPoint]:
     """trend.json written by `chunkscope trend --out` (points without their sweeps)."""
-    path = Path(path)
-    if path.is_dir():
-        path = path / "trend.json"
-    try:
-        rows = json.loads(path.read_text(encoding="utf-8"))
-        points = []
-        for row in rows:
-            row = dict(row)
-            row["tolerances"] = {float(k): v for k, v in row.get("tolerances", {}).items()}
-            points.append(TrendPoint(**row))
-    except FileNotFoundError:
-        raise ChunkscopeError(f"{path.name} does not exist.") from None
-    except (ValueError, TypeError, AttributeError) as exc:
-        raise ChunkscopeError(f"{path.name} is not a trend.json written by chunkscope trend ({exc}).") from None
-    return points
+    with user_path(path, "opened"):
+        return read_trend(path)
 
 
 # ---- with dialogs (the window's menu actions) ---------------------------------------------

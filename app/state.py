@@ -95,6 +95,8 @@ class Workbench(QObject):
     sweep_progress = Signal(str, int, int)
     sweep_ended = Signal(str, str)  # path, "done" | "cancelled" | error message
     error = Signal(str)
+    opened = Signal(str)  # path: the checkpoint's weights loaded
+    open_failed = Signal(str)  # path: the checkpoint could not be opened
 
     def __init__(self, runner: Runner, parent: QObject | None = None):
         super().__init__(parent)
@@ -174,6 +176,7 @@ class Workbench(QObject):
             self._start_encode(entry)
         if self.entries.get(self.current) is None:
             self.current = path
+        self.opened.emit(path)
         self.entry_changed.emit(path)
         if path == self.current:
             self.current_changed.emit(path)
@@ -185,6 +188,7 @@ class Workbench(QObject):
             self.current = ready[0] if ready else ""
             self.current_changed.emit(self.current)
         self.entries_changed.emit()
+        self.open_failed.emit(path)
         self.error.emit(message)
 
     def close_checkpoint(self, path: str) -> None:

@@ -13,6 +13,7 @@ from PySide6.QtWidgets import (
 )
 
 from app import report_actions
+from app.messages import error_text
 from app.panel_compare import ComparePanel
 from app.panel_latent import LatentPanel
 from app.panel_live import LivePanel
@@ -101,6 +102,9 @@ class MainWindow(QMainWindow):
         QTimer.singleShot(0, lambda: None if self.isVisible() else self._start_queued_work())
         self.workbench = Workbench(self.runner, self)
         self.workbench.error.connect(self.show_error)
+        self.workbench.opened.connect(self._checkpoint_opened)
+        self.workbench.open_failed.connect(self._checkpoint_failed)
+        self._opening: set[str] = set()  # checkpoints the user opened whose weights are still loading
         self.closing = False
 
         self.models = ModelsPanel(self.workbench)
@@ -260,9 +264,23 @@ class MainWindow(QMainWindow):
             self.workbench.open_checkpoint(path, select=(i == 0))
 
     def open_checkpoint(self, path: str) -> None:
+        """Open a checkpoint the user chose; it enters Recent files once its weights have loaded."""
         self.message.hide()
+        resolved = str(Path(path).resolve())
         self.workbench.open_checkpoint(path)
-        self._remember(str(Path(path).resolve()))
+        entry = self.workbench.entries.get(resolved)
+        if entry is not None and entry.codec is not None:  # it was open already
+            self._remember(resolved)
+        else:
+            self._opening.add(resolved)
+
+    def _checkpoint_opened(self, path: str) -> None:
+        if path in self._opening:
+            self._opening.discard(path)
+            self._remember(path)
+
+    def _checkpoint_failed(self, path: str) -> None:
+        self._opening.discard(path)
 
     def open_checkpoint_dialog(self) -> None:
         paths, _ = QFileDialog.getOpenFileNames(self, "Open checkpoints", str(self.settings.value("last_dir", "")),
@@ -352,8 +370,8 @@ class MainWindow(QMainWindow):
                 written = report_actions.ask_save_report(self, **self.report_inputs())
             else:
                 written = report_actions.save_report(path, force=force, **self.report_inputs())
-        except (ChunkscopeError, FileExistsError, OSError) as exc:
-            self.show_error(str(exc))
+        except (ChunkscopeError, OSError) as exc:
+            self.show_error(error_text(exc, path or "the report", "saved"))
             return None
         if written is not None:
             self.statusBar().showMessage(f"report saved to {written}", 8000)
@@ -385,8 +403,8 @@ class MainWindow(QMainWindow):
                 written = report_actions.ask_save_workspace(self, workspace)
             else:
                 written = report_actions.save_workspace_file(workspace, path, force=force)
-        except (ChunkscopeError, FileExistsError, OSError) as exc:
-            self.show_error(str(exc))
+        except (ChunkscopeError, OSError) as exc:
+            self.show_error(error_text(exc, path or "the workspace", "saved"))
             return None
         if written is not None:
             self.statusBar().showMessage(f"workspace saved to {written}", 8000)
@@ -407,7 +425,7 @@ class MainWindow(QMainWindow):
         try:
             workspace, problems = report_actions.open_workspace_file(path)
         except (ChunkscopeError, OSError) as exc:
-            self.show_error(str(exc))
+            self.show_error(error_text(exc, path, "opened"))
             return False
         self.message.hide()
         settings = workspace.settings or {}
@@ -453,12 +471,12 @@ class MainWindow(QMainWindow):
         """Show the sweep(s) in a folder written by `chunkscope sweep --out` (the folder of one
         checkpoint, or the --out folder holding one per checkpoint)."""
         folder = Path(folder)
-        subfolders = [] if (folder / "sweep.json").is_file() else sorted(
-            p for p in folder.iterdir() if (p / "sweep.json").is_file()) if folder.is_dir() else []
         try:
+            subfolders = [] if (folder / "sweep.json").is_file() or not folder.is_dir() else sorted(
+                p for p in folder.iterdir() if (p / "sweep.json").is_file())
             results = [report_actions.open_sweep_folder(p) for p in (subfolders or [folder])]
         except (ChunkscopeError, OSError) as exc:
-            self.show_error(str(exc))
+            self.show_error(error_text(exc, folder, "opened"))
             return []
         self.message.hide()
         attached = [self.workbench.attach_sweep(r) for r in results]

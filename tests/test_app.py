@@ -201,19 +201,35 @@ def test_a_corrupt_file_shows_the_engines_message_and_the_app_keeps_working(qtbo
         window.live.slider.setValue(0.3)
 
 
-def test_a_dropped_file_is_opened_and_remembered(qtbot, window, tmp_path):
+def _drop(window, path):
     from PySide6.QtCore import QMimeData, QUrl
     from PySide6.QtGui import QDropEvent
 
-    dropped = tmp_path / "dropped.safetensors"
-    dropped.write_bytes(b"xx")
     mime = QMimeData()
-    mime.setUrls([QUrl.fromLocalFile(str(dropped))])
-    event = QDropEvent(QPointF(10, 10), Qt.DropAction.CopyAction, mime, Qt.MouseButton.NoButton, Qt.KeyboardModifier.NoModifier)
-    window.dropEvent(event)
-    qtbot.waitUntil(lambda: window.message.text().startswith("dropped.safetensors"), timeout=WAIT)
-    assert str(dropped.resolve()) == window.recent_files()[0]
-    assert window.recent_menu.actions()[0].text() == str(dropped.resolve())
+    mime.setUrls([QUrl.fromLocalFile(str(path))])
+    window.dropEvent(QDropEvent(QPointF(10, 10), Qt.DropAction.CopyAction, mime, Qt.MouseButton.NoButton,
+                                Qt.KeyboardModifier.NoModifier))
+
+
+def test_only_checkpoints_that_open_enter_recent_files(qtbot, window, tmp_path):
+    # issue 11: 13 failed opens made 13 Recent entries; a failed open must leave Recent as it was
+    before = window.recent_files()
+    for i in range(3):
+        broken = tmp_path / f"broken-{i}.safetensors"
+        broken.write_bytes(b"xx")
+        _drop(window, broken)
+        qtbot.waitUntil(lambda: window.message.text().startswith(broken.name), timeout=WAIT)
+    window.open_checkpoint(str(tmp_path / "missing.safetensors"))
+    qtbot.waitUntil(lambda: window.message.text().startswith("missing.safetensors"), timeout=WAIT)
+    qtbot.wait(100)
+    assert window.recent_files() == before
+
+    good = tmp_path / "dropped.safetensors"
+    good.write_bytes(sample_paths()[0].read_bytes())
+    _drop(window, good)
+    qtbot.waitUntil(lambda: window.recent_files()[:1] == [str(good.resolve())], timeout=WAIT)
+    assert window.recent_menu.actions()[0].text() == str(good.resolve())
+    window.workbench.close_checkpoint(str(good.resolve()))
 
 
 def test_empty_text_is_refused_with_a_message(qtbot, window):

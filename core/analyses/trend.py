@@ -15,6 +15,7 @@ from core.errors import ChunkscopeError, SweepCancelled
 from core.engine.sweep import TOLERANCE_LEVELS, SweepResult, SweepSettings, run_sweep
 from core.engine.text import chunk_text
 from core.outputs.files import Outputs, OutputRefusedError, check_target, check_writable
+from core.outputs.reading import Damaged, json_kind, need
 
 STEP_KEYS = ("step", "steps_done", "global_step", "steps")
 _STEP_IN_NAME = re.compile(r"(?:step|iter|it|ckpt|checkpoint)?[-_ ]?(\d+)(?!.*\d)", re.IGNORECASE)
@@ -179,3 +180,69 @@ def check_trend_output(folder: str | Path, force: bool = False) -> None:
     for name, recognise in (("trend.csv", _is_trend_csv), ("trend.json", _is_trend_json)):
         check_target(folder / name, force, recognise)
     check_writable(folder / "trend.csv")
+
+
+_POINT_FIELDS = {"path", "name", "step", "step_source", "sha256", "accuracy_at_zero", "latent_rms", "tolerances", "error"}
+
+
+def _point_from_dict(row: object) -> TrendPoint:
+    """A TrendPoint from its `to_dict` form; Damaged when it is not one."""
+    if not isinstance(row, dict):
+        raise Damaged(f"it lists {json_kind(row)} where a checkpoint's point should be")
+    unknown = sorted(set(row) - _POINT_FIELDS)
+    if unknown:
+        raise Damaged(f"a point has an unknown entry, {unknown[0]!r}")
+    name = need(row, "name", str)
+    for key, kind in (("path", str), ("step_source", str), ("sha256", str), ("error", str)):
+        if row.get(key) is not None and not isinstance(row[key], kind):
+            raise Damaged(f'the "{key}" of {name!r} is {json_kind(row[key])}, not a string')
+    step = row.get("step")
+    if step is not None and (isinstance(step, bool) or not isinstance(step, int)):
+        raise Damaged(f'the "step" of {name!r} is {json_kind(step)}, not a whole number')
+    for key in ("accuracy_at_zero", "latent_rms"):
+        value = row.get(key)
+        if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))):
+            raise Damaged(f'the "{key}" of {name!r} is {json_kind(value)}, not a number')
+    raw = row.get("tolerances", {})
+    if not isinstance(raw, dict):
+        raise Damaged(f'the "tolerances" of {name!r} are {json_kind(raw)}, not an object')
+    tolerances: dict[float, dict] = {}
+    for level, t in raw.items():
+        try:
+            key = float(level)
+        except ValueError:
+            raise Damaged(f"{name!r} has a tolerance at level {level!r}, which is not a number") from None
+        if not isinstance(t, dict) or not isinstance(t.get("sigma", None), (int, float, type(None))) \
+                or isinstance(t.get("sigma"), bool) or not isinstance(t.get("status", ""), str):
+            raise Damaged(f"the {level} tolerance of {name!r} is not a sigma and a status")
+        tolerances[key] = dict(t)
+    return TrendPoint(
+        path=row.get("path") or "", name=name, step=step, step_source=row.get("step_source") or "none",
+        sha256=row.get("sha256") or "", accuracy_at_zero=row.get("accuracy_at_zero"), tolerances=tolerances,
+        latent_rms=row.get("latent_rms"), error=row.get("error"),
+    )
+
+
+def read_trend(path: str | Path) -> list[TrendPoint]:
+    """The points of a trend.json written by `write_trend` (or its folder), without their sweeps."""
+    path = Path(path)
+    if path.is_dir():
+        path = path / "trend.json"
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ChunkscopeError(f"{path} does not exist.") from None
+    except IsADirectoryError:
+        raise ChunkscopeError(f"{path} is a folder, not a trend.json written by chunkscope trend.") from None
+    except UnicodeDecodeError:
+        raise ChunkscopeError(f"{path} is not a trend.json written by chunkscope trend: it is not UTF-8 text.") from None
+    except ValueError:
+        raise ChunkscopeError(f"{path} is not a trend.json written by chunkscope trend: it is not valid JSON.") from None
+    except OSError as exc:
+        raise ChunkscopeError(f"{path} cannot be read: {exc.strerror or 'the system refused'}.") from None
+    try:
+        if not isinstance(data, list):
+            raise Damaged(f"it holds {json_kind(data)}, not a list of points")
+        return [_point_from_dict(row) for row in data]
+    except Damaged as exc:
+        raise ChunkscopeError(f"{path} is not a trend.json written by chunkscope trend: {exc}.") from None
