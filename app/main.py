@@ -42,6 +42,12 @@ def run_workbench(screenshot: str | None = None, view: str | None = None) -> int
     run what `view` shows, save a PNG of the window and return 0."""
     if screenshot:
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+    from app.system_libraries import missing_libraries_message
+
+    problem = missing_libraries_message(os.environ)  # else Qt aborts the process (exit 134) when one is missing
+    if problem:
+        print(problem, file=sys.stderr)
+        return 1
     app = application()
     from app.window import VIEWS, MainWindow
 
