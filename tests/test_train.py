@@ -3,13 +3,17 @@
 from __future__ import annotations
 
 import argparse
+import hashlib
+import math
+import sysconfig
 from dataclasses import replace
+from pathlib import Path
 
 import pytest
 import torch
 
 from core.codecs.checkpoint import load_codec
-from core.training.corpus import Corpus, CorpusInfo, file_text, is_held_out
+from core.training.corpus import Corpus, CorpusInfo, file_text, is_held_out, stdlib_files
 from core.codecs.tokenizer import train_byte_bpe
 from core.training.train import RECIPES, Recipe, add_arguments, train
 
@@ -86,8 +90,34 @@ def test_tokenizer_training_is_deterministic(shared):
 def test_corpus_extracts_docstrings_and_comments_only():
     source = '"""Module doc."""\nimport os  # why os\n\ndef f():\n    """Function doc."""\n    return "not a doc"\n'
     assert file_text(source) == "Module doc.\nFunction doc.\nwhy os\n"
-    # the split rule is a pure function of the relative path
-    assert is_held_out("json/decoder.py") == is_held_out("json/decoder.py")
+
+
+def documented_split(relative_path: str) -> bool:
+    """core/training/corpus.py's docstring, followed by hand: held out when
+    int(sha256(relative posix path), 16) % 10 == 0 (the digest's bytes read big-endian are that integer)."""
+    return int.from_bytes(hashlib.sha256(relative_path.encode("utf-8")).digest(), "big") % 10 == 0
+
+
+def test_the_split_follows_the_documented_hash_rule():
+    # known answers, computed once with hashlib in a shell: the digest of "email/parser.py" is 0 mod 10,
+    # those of "json/decoder.py" and "os.py" are 3
+    assert is_held_out("email/parser.py") and not is_held_out("json/decoder.py") and not is_held_out("os.py")
+    names = [f"pkg{i}/mod{i}.py" for i in range(400)] + ["json/decoder.py", "email/parser.py", "os.py", "a.py"]
+    held = [name for name in names if is_held_out(name)]
+    assert held == [name for name in names if documented_split(name)]
+    assert 0 < len(held) < len(names)  # both sides of the split occur, so the comparison can fail
+
+
+def test_the_split_of_this_standard_library_holds_out_about_a_tenth():
+    # every stdlib path the corpus walks: the hash rule agrees with the docstring's, and a uniform hash
+    # mod 10 holds out Binomial(n, 0.1) files: within 4 standard deviations of n / 10 (common practice)
+    root = Path(sysconfig.get_paths()["stdlib"])
+    paths = [p.relative_to(root).as_posix() for p in stdlib_files(root)]
+    assert len(paths) > 200
+    held = [p for p in paths if is_held_out(p)]
+    assert held == [p for p in paths if documented_split(p)]
+    n = len(paths)
+    assert abs(len(held) - n / 10) <= 4 * math.sqrt(n * 0.1 * 0.9)
 
 
 def test_cli_arguments_parse():
