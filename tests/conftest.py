@@ -4,6 +4,7 @@ window on the shipped samples per GUI test module."""
 
 from __future__ import annotations
 
+import hashlib
 import os
 from types import SimpleNamespace
 
@@ -78,6 +79,12 @@ class LookupCodec:
         slots = (z / self.scale).reshape(z.shape[0], self.chunk_size, self.per_token_dim)
         squared = slots.square().sum(-1, keepdim=True) - 2 * slots @ self.table.T + self.table.square().sum(-1)
         return -self.sharpness * squared
+
+
+def documented_held_out(relative_path: str) -> bool:
+    """core/training/corpus.py's docstring, followed by hand (not by calling is_held_out): a file is held
+    out when int(sha256(relative posix path), 16) % 10 == 0; the digest's bytes read big-endian are that integer."""
+    return int.from_bytes(hashlib.sha256(relative_path.encode("utf-8")).digest(), "big") % 10 == 0
 
 
 @pytest.fixture()

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import hashlib
 import math
 import sysconfig
 from dataclasses import replace
@@ -12,6 +11,7 @@ from pathlib import Path
 import pytest
 import torch
 
+from conftest import documented_held_out
 from core.codecs.checkpoint import load_codec
 from core.training.corpus import Corpus, CorpusInfo, file_text, is_held_out, stdlib_files
 from core.codecs.tokenizer import train_byte_bpe
@@ -92,19 +92,13 @@ def test_corpus_extracts_docstrings_and_comments_only():
     assert file_text(source) == "Module doc.\nFunction doc.\nwhy os\n"
 
 
-def documented_split(relative_path: str) -> bool:
-    """core/training/corpus.py's docstring, followed by hand: held out when
-    int(sha256(relative posix path), 16) % 10 == 0 (the digest's bytes read big-endian are that integer)."""
-    return int.from_bytes(hashlib.sha256(relative_path.encode("utf-8")).digest(), "big") % 10 == 0
-
-
 def test_the_split_follows_the_documented_hash_rule():
     # known answers, computed once with hashlib in a shell: the digest of "email/parser.py" is 0 mod 10,
     # those of "json/decoder.py" and "os.py" are 3
     assert is_held_out("email/parser.py") and not is_held_out("json/decoder.py") and not is_held_out("os.py")
     names = [f"pkg{i}/mod{i}.py" for i in range(400)] + ["json/decoder.py", "email/parser.py", "os.py", "a.py"]
     held = [name for name in names if is_held_out(name)]
-    assert held == [name for name in names if documented_split(name)]
+    assert held == [name for name in names if documented_held_out(name)]
     assert 0 < len(held) < len(names)  # both sides of the split occur, so the comparison can fail
 
 
@@ -115,7 +109,7 @@ def test_the_split_of_this_standard_library_holds_out_about_a_tenth():
     paths = [p.relative_to(root).as_posix() for p in stdlib_files(root)]
     assert len(paths) > 200
     held = [p for p in paths if is_held_out(p)]
-    assert held == [p for p in paths if documented_split(p)]
+    assert held == [p for p in paths if documented_held_out(p)]
     n = len(paths)
     assert abs(len(held) - n / 10) <= 4 * math.sqrt(n * 0.1 * 0.9)
 
