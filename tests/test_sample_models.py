@@ -12,18 +12,19 @@ from __future__ import annotations
 
 import hashlib
 import sys
-import sysconfig
 from functools import lru_cache
 from pathlib import Path
 
 import pytest
 
-from conftest import documented_held_out
+from conftest import documented_held_out, stdlib_corpus_files
 from core.codecs.checkpoint import Codec, load_codec
 from core.engine.sweep import SweepSettings, run_sweep
 from core.engine.text import Chunks, chunk_text, demo_text
-from core.training.corpus import file_text, stdlib_files
-from core.training.train import DATA_SCALE_SIGMAS, HELD_OUT_TOKENS, RECIPES, SWEEP_REPEATS, SWEEP_SEED, SWEEP_TOKENS, Recipe, prefix_chunks, tokenizer_sha256
+from core.training.corpus import file_text
+from core.training.train import (
+    DATA_SCALE_SIGMAS, HELD_OUT_TOKENS, RECIPES, SWEEP_REPEATS, SWEEP_SEED, SWEEP_TOKENS, Recipe, prefix_chunks, tokenizer_sha256,
+)
 
 SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_models"
 NAMES = sorted(RECIPES)
@@ -47,9 +48,9 @@ def held_out_split() -> list[str]:
     corpus = card_corpus()
     if sys.version.split()[0] != corpus["python_version"]:
         pytest.skip(f"the cards were measured on Python {corpus['python_version']}'s standard library, this is {sys.version.split()[0]}")
-    root = Path(sysconfig.get_paths()["stdlib"])
+    root, files = stdlib_corpus_files()
     texts = []
-    for path in stdlib_files(root):
+    for path in files:
         if not documented_held_out(path.relative_to(root).as_posix()):
             continue
         try:

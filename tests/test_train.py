@@ -4,16 +4,14 @@ from __future__ import annotations
 
 import argparse
 import math
-import sysconfig
 from dataclasses import replace
-from pathlib import Path
 
 import pytest
 import torch
 
-from conftest import documented_held_out
+from conftest import documented_held_out, stdlib_corpus_files
 from core.codecs.checkpoint import load_codec
-from core.training.corpus import Corpus, CorpusInfo, file_text, is_held_out, stdlib_files
+from core.training.corpus import Corpus, CorpusInfo, file_text, is_held_out
 from core.codecs.tokenizer import train_byte_bpe
 from core.training.train import RECIPES, Recipe, add_arguments, train
 
@@ -105,8 +103,8 @@ def test_the_split_follows_the_documented_hash_rule():
 def test_the_split_of_this_standard_library_holds_out_about_a_tenth():
     # every stdlib path the corpus walks: the hash rule agrees with the docstring's, and a uniform hash
     # mod 10 holds out Binomial(n, 0.1) files: within 4 standard deviations of n / 10 (common practice)
-    root = Path(sysconfig.get_paths()["stdlib"])
-    paths = [p.relative_to(root).as_posix() for p in stdlib_files(root)]
+    root, files = stdlib_corpus_files()
+    paths = [p.relative_to(root).as_posix() for p in files]
     assert len(paths) > 200
     held = [p for p in paths if is_held_out(p)]
     assert held == [p for p in paths if documented_held_out(p)]
