@@ -27,6 +27,9 @@ class Palette:
 
 
 PALETTE = Palette()
+# one line style and one symbol per tolerance level, finest level first (core.engine.tolerance's order)
+LEVEL_PEN_STYLES = (Qt.PenStyle.SolidLine, Qt.PenStyle.DashLine, Qt.PenStyle.DotLine)
+LEVEL_SYMBOLS = ("o", "s", "t")
 SANS = ["Inter", "IBM Plex Sans", "Source Sans 3", "Segoe UI", "Helvetica Neue", "DejaVu Sans"]
 MONO = ["JetBrains Mono", "IBM Plex Mono", "Cascadia Mono", "Menlo", "Consolas", "DejaVu Sans Mono"]
 COLORMAP = "cividis"  # perceptually uniform and readable with colour-vision deficiency

@@ -78,8 +78,13 @@ def test_compare_panel_runs_and_its_table_holds_the_comparisons_numbers(compare_
         assert table.item(0, j).text() == row.sha256[:10]
         assert table.item(1, j).text() == f"{row.latent_rms:.4g}"
         assert table.item(2, j).text().startswith(f"{row.accuracy_at_zero * 100:.3f}")
-        assert [table.item(3 + i, j).text() for i in range(3)] == [tolerance_label(t) for t in row.absolute]
-        assert [table.item(6 + i, j).text() for i in range(3)] == [tolerance_label(t) for t in row.data_scale]
+        groups = (row.absolute, row.absolute_loss, row.data_scale, row.data_scale_loss)
+        for g, tolerances in enumerate(groups):
+            assert [table.item(3 + 3 * g + i, j).text() for i in range(3)] == [tolerance_label(t) for t in tolerances]
+    labels = [table.verticalHeaderItem(i).text() for i in range(table.rowCount())]
+    assert labels[3:] == [f"{noise}: {what} {level}" for noise in ("absolute", "relative")
+                          for what, levels in (("accuracy ≥", ("99.9 %", "99 %", "90 %")), ("loss ≤", ("0.1 pt", "1 pt", "10 pt")))
+                          for level in levels]  # the two kinds carry different words, so they cannot be confused
     assert panel.warning.isHidden()  # same latent scale: no warning
     # one band, one curve per checkpoint on the accuracy plot; the difference curve on the other
     curves = [i for i in panel.accuracy_plot.getPlotItem().items if isinstance(i, pg.PlotDataItem) and i.name()]

@@ -12,7 +12,7 @@ from __future__ import annotations
 import json
 import math
 import os
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Sequence
 
@@ -21,9 +21,15 @@ import numpy as np
 from core.errors import ChunkscopeError
 from core.outputs.files import staged_folder
 from core.engine.noise import encode_chunks
-from core.engine.sweep import DEFAULT_SIGMAS, SweepResult, SweepSettings, read_sweep, run_sweep
+from core.engine.sweep import (
+    DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED, DEFAULT_SIGMAS, SweepResult, SweepSettings, read_sweep, run_sweep,
+)
 from core.engine.text import chunk_text
+from core.engine.tolerance import LOSS, Tolerance
 
+ALPHA = 0.05  # the significance level of every paired test the tool reports
+SIGNIFICANT = f"p < {ALPHA:g}"
+COMPARISON_NOISES = ("data-scale", "isotropic")  # a comparison sweeps under both; either can be the main one
 EXACT_BELOW = 25
 SCALE_WARNING_RATIO = 1.5
 
@@ -113,7 +119,7 @@ class PairedComparison:
     unit: str
     rows: list[PairedRow]
 
-    def significant(self, alpha: float = 0.05) -> list[bool]:
+    def significant(self, alpha: float = ALPHA) -> list[bool]:
         return [r.pvalue < alpha for r in self.rows]
 
 
@@ -141,12 +147,27 @@ def paired_comparison(a: SweepResult, b: SweepResult) -> PairedComparison:
 
 @dataclass
 class ToleranceRow:
+    """One codec's tolerances. "absolute" and "data_scale" name the noise (absolute σ under
+    isotropic noise, relative σ under data-scale noise); each holds the accuracy-level
+    tolerances, and the *_loss lists the loss tolerances."""
+
     name: str
     sha256: str
     latent_rms: float
     accuracy_at_zero: float
-    absolute: list[dict]  # isotropic tolerances
-    data_scale: list[dict]
+    absolute: list[Tolerance]  # isotropic noise, kind "absolute"
+    data_scale: list[Tolerance]
+    absolute_loss: list[Tolerance] = field(default_factory=list)  # isotropic noise, kind "loss"
+    data_scale_loss: list[Tolerance] = field(default_factory=list)
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "ToleranceRow":
+        return cls(
+            data["name"], data["sha256"], float(data["latent_rms"]), float(data["accuracy_at_zero"]),
+            [Tolerance.from_dict(t) for t in data["absolute"]], [Tolerance.from_dict(t) for t in data["data_scale"]],
+            [Tolerance.from_dict(t, LOSS) for t in data.get("absolute_loss", [])],
+            [Tolerance.from_dict(t, LOSS) for t in data.get("data_scale_loss", [])],
+        )
 
 
 @dataclass
@@ -195,12 +216,12 @@ class Comparison:
 
 
 def tolerance_csv(comparison: Comparison) -> str:
-    lines = ["checkpoint,sha256,latent_rms,accuracy_at_sigma0,noise,level,sigma,status"]
+    lines = ["checkpoint,sha256,latent_rms,accuracy_at_sigma0,noise,kind,level,sigma,status"]
     for t in comparison.tolerances:
-        for noise, rows in (("isotropic", t.absolute), ("data-scale", t.data_scale)):
+        for noise, rows in (("isotropic", t.absolute + t.absolute_loss), ("data-scale", t.data_scale + t.data_scale_loss)):
             for row in rows:
-                sigma = "" if row["sigma"] is None else f"{row['sigma']:.6g}"
-                lines.append(f"{t.name},{t.sha256},{t.latent_rms:.6g},{t.accuracy_at_zero:.6f},{noise},{row['level']},{sigma},{row['status']}")
+                sigma = "" if row.sigma is None else f"{row.sigma:.6g}"
+                lines.append(f"{t.name},{t.sha256},{t.latent_rms:.6g},{t.accuracy_at_zero:.6f},{noise},{row.kind},{row.level},{sigma},{row.status}")
     return "\n".join(lines) + "\n"
 
 
@@ -239,9 +260,9 @@ def compare_codecs(
     text: str,
     sigmas: Sequence[float] = DEFAULT_SIGMAS,
     absolute_sigmas: Sequence[float] | None = None,
-    repeats: int = 4,
-    seed: int = 0,
-    main_noise: str = "data-scale",
+    repeats: int = DEFAULT_REPEATS,
+    seed: int = DEFAULT_SEED,
+    main_noise: str = DEFAULT_NOISE,
     text_source: str = "",
     progress: Callable[[int, int], None] | None = None,
     should_stop: Callable[[], bool] | None = None,
@@ -250,8 +271,8 @@ def compare_codecs(
     """Sweep every codec under data-scale and isotropic noise on the same text and seed."""
     if len(codecs) < 2:
         raise ChunkscopeError("a comparison needs at least two checkpoints.")
-    if main_noise not in ("data-scale", "isotropic"):
-        raise ChunkscopeError("a comparison's main noise model is data-scale or isotropic.")
+    if main_noise not in COMPARISON_NOISES:
+        raise ChunkscopeError(f"a comparison's main noise model is {' or '.join(COMPARISON_NOISES)}, not {main_noise!r}.")
     chunked = [chunk_text(text, c, text_source or "the text") for c in codecs]
     encoded = []
     for codec, chunks in zip(codecs, chunked):
@@ -285,8 +306,8 @@ def compare_codecs(
     rows = []
     for i, codec in enumerate(codecs):
         iso, ds = results["isotropic"][i], results["data-scale"][i]
-        acc0 = ds.curves[0].token_accuracy if ds.sigmas[0] == 0 else float("nan")
-        rows.append(ToleranceRow(codec.name, codec.sha256, rms[i], acc0, [asdict(t) for t in iso.tolerances], [asdict(t) for t in ds.tolerances]))
+        rows.append(ToleranceRow(codec.name, codec.sha256, rms[i], ds.accuracy_at_zero, list(iso.tolerances),
+                                 list(ds.tolerances), list(iso.loss_tolerances), list(ds.loss_tolerances)))
     main = results[main_noise]
     paired = [paired_comparison(main[0], other) for other in main[1:]]
     settings_dict = {
@@ -309,7 +330,10 @@ def read_comparison(directory: str | os.PathLike) -> Comparison:
     names = [c["name"] for c in data["settings"]["checkpoints"]]
     iso = [read_sweep(directory / "sweeps" / "isotropic" / n) for n in names]
     ds = [read_sweep(directory / "sweeps" / "data-scale" / n) for n in names]
-    tolerances = [ToleranceRow(**t) for t in data["tolerances"]]
+    tolerances = [ToleranceRow.from_dict(t) for t in data["tolerances"]]
+    for row, a, d in zip(tolerances, iso, ds):  # written before the loss tolerance: take it from the sweeps
+        row.absolute_loss = row.absolute_loss or list(a.loss_tolerances)
+        row.data_scale_loss = row.data_scale_loss or list(d.loss_tolerances)
     paired = [
         PairedComparison(p["name_a"], p["name_b"], p["unit"], [PairedRow(**r) for r in p["rows"]]) for p in data["paired"]
     ]

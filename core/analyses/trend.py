@@ -5,12 +5,13 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import Any, Callable, Iterator
 
 from core.codecs.checkpoint import load_codec
 from core.errors import ChunkscopeError, SweepCancelled
 from core.engine.sweep import SweepResult, SweepSettings, run_sweep
 from core.engine.text import chunk_text
+from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, Tolerance
 
 STEP_KEYS = ("step", "steps_done", "global_step", "steps")
 _STEP_IN_NAME = re.compile(r"(?:step|iter|it|ckpt|checkpoint)?[-_ ]?(\d+)(?!.*\d)", re.IGNORECASE)
@@ -39,17 +40,36 @@ class TrendPoint:
     step_source: str  # "card", "file name" or "none"
     sha256: str = ""
     accuracy_at_zero: float | None = None
-    tolerances: dict[float, dict] = field(default_factory=dict)  # level -> {"sigma", "status"}
+    tolerances: list[Tolerance] = field(default_factory=list)  # kind "absolute"
     latent_rms: float | None = None
     error: str | None = None
     result: SweepResult | None = None
+    loss_tolerances: list[Tolerance] = field(default_factory=list)  # kind "loss"
+
+    def tolerance(self, level: float, kind: str = ABSOLUTE) -> Tolerance | None:
+        for t in self.loss_tolerances if kind == LOSS else self.tolerances:
+            if abs(t.level - level) < 1e-12:
+                return t
+        return None
 
     def to_dict(self) -> dict:
         return {
             "path": self.path, "name": self.name, "step": self.step, "step_source": self.step_source,
             "sha256": self.sha256, "accuracy_at_zero": self.accuracy_at_zero, "latent_rms": self.latent_rms,
-            "tolerances": {str(k): v for k, v in self.tolerances.items()}, "error": self.error,
+            "tolerances": [t.to_dict() for t in self.tolerances],
+            "loss_tolerances": [t.to_dict() for t in self.loss_tolerances], "error": self.error,
         }
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> "TrendPoint":
+        """A point of trend.json back; older files keyed the tolerances by level and had no loss tolerances."""
+        data = dict(data)
+        tolerances = data.pop("tolerances", [])
+        if isinstance(tolerances, dict):
+            tolerances = [{"level": float(k), **v} for k, v in tolerances.items()]
+        loss = data.pop("loss_tolerances", [])
+        return cls(**data, tolerances=[Tolerance.from_dict(t) for t in tolerances],
+                   loss_tolerances=[Tolerance.from_dict(t, LOSS) for t in loss])
 
 
 def checkpoints_in(folder: str | Path) -> list[Path]:
@@ -98,7 +118,7 @@ def trend(
         acc0 = result.curves[0].token_accuracy if result.sigmas[0] == 0 else None
         yield TrendPoint(
             str(path), codec.name, step, source, sha256=codec.sha256, accuracy_at_zero=acc0,
-            tolerances={t.level: {"sigma": t.sigma, "status": t.status} for t in result.tolerances},
+            tolerances=list(result.tolerances), loss_tolerances=list(result.loss_tolerances),
             latent_rms=result.latent_rms, result=result,
         )
 
@@ -108,10 +128,12 @@ def sort_points(points: list[TrendPoint]) -> list[TrendPoint]:
 
 
 def trend_csv(points: list[TrendPoint]) -> str:
-    lines = ["name,step,step_source,accuracy_at_sigma0,tol_99.9,tol_99,tol_90,latent_rms,sha256,error"]
+    levels = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
+    head = ",".join(f"{'tol' if kind == ABSOLUTE else 'loss_tol'}_{level * 100:g}" for kind, level in levels)  # % or points
+    lines = [f"name,step,step_source,accuracy_at_sigma0,{head},latent_rms,sha256,error"]
     for p in sort_points(points):
-        tol = [p.tolerances.get(level, {}) for level in (0.999, 0.99, 0.9)]
-        cells = ["" if not t or t.get("sigma") is None else f"{t['sigma']:.6g}{'+' if t.get('status') == 'above_grid' else ''}" for t in tol]
+        tol = [p.tolerance(level, kind) for kind, level in levels]
+        cells = ["" if t is None or t.sigma is None else f"{t.sigma:.6g}{'+' if t.status == 'above_grid' else ''}" for t in tol]
         error = (p.error or "").replace('"', "'")
         lines.append(
             f"{p.name},{'' if p.step is None else p.step},{p.step_source},"

@@ -116,11 +116,7 @@ def load_workspace(path: str | os.PathLike) -> Workspace:
             raise ChunkscopeError(f"{path.name} was saved by a newer chunkscope (workspace format {manifest['format']}).")
         sweeps = {key: read_sweep(staging / folder) for key, folder in manifest.get("sweeps", {}).items()}
         comparison = read_comparison(staging / manifest["comparison"]) if manifest.get("comparison") else None
-        points = []
-        for p in manifest.get("trend_points", []):
-            p = dict(p)
-            p["tolerances"] = {float(k): v for k, v in p.get("tolerances", {}).items()}
-            points.append(TrendPoint(**p))
+        points = [TrendPoint.from_dict(p) for p in manifest.get("trend_points", [])]
         return Workspace(
             checkpoints=manifest.get("checkpoints", []),
             text=(staging / "text.txt").read_text(encoding="utf-8"),
