@@ -158,6 +158,7 @@ class ComparePanel(QWidget):
         self.text = ""
         self.text_source = ""
         self.comparison: Comparison | None = None
+        self.table_rows: list[tuple[str, str, float] | None] = []  # (noise, kind, level) per table row
         self.view: SideBySide | None = None
         self.log_x = True
         self._run_task: Task | None = None
@@ -263,7 +264,7 @@ class ComparePanel(QWidget):
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         self.table.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
         self.table.setFocusPolicy(Qt.FocusPolicy.NoFocus)
-        self.table.verticalHeader().setDefaultSectionSize(22)
+        self.table.verticalHeader().setDefaultSectionSize(18)
         self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
         self.table.horizontalHeader().setTextElideMode(Qt.TextElideMode.ElideMiddle)
         self.table.setVerticalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAsNeeded)
@@ -278,8 +279,8 @@ class ComparePanel(QWidget):
         table_box.addStretch(1)
         table_widget = QWidget()
         table_widget.setLayout(table_box)
-        table_widget.setMinimumWidth(330)
-        tl.addWidget(table_widget, 4)
+        table_widget.setMinimumWidth(430)
+        tl.addWidget(table_widget, 5)
 
         bottom, bl = card(margins=(12, 8), spacing=6)
         head = QHBoxLayout()
@@ -334,7 +335,7 @@ class ComparePanel(QWidget):
         split.addWidget(bottom)
         split.setStretchFactor(0, 5)
         split.setStretchFactor(1, 4)
-        split.setSizes([420, 340])
+        split.setSizes([470, 290])
         outer.addWidget(split, 1)
 
         self.selected_lines = []
@@ -601,34 +602,55 @@ class ComparePanel(QWidget):
         t = self.table
         t.clear()
         c = self.comparison
+        self.table_rows = []
         if c is None:
             t.setRowCount(0)
             t.setColumnCount(0)
             t.setFixedHeight(60)
             self.table_note.setText("")
             return
-        levels = [("absolute", ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [("absolute", LOSS, level) for level in LOSS_LEVELS]
-        levels += [("relative", kind, level) for _, kind, level in levels]
-        rows = ["sha256", "latent RMS", "accuracy, σ = 0"] + [f"{noise}: {level_name(level, kind)}" for noise, kind, level in levels]
-        first_relative = 3 + len(levels) // 2
-        t.setRowCount(len(rows))
+        # rows: the facts, then per noise a heading row and its accuracy-level and loss tolerances
+        kinds = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
+        labels = ["sha256", "latent RMS", "accuracy, σ = 0"]
+        self.table_rows = [None, None, None]  # (noise, kind, level) of each tolerance row, None for the others
+        for noise in COMPARISON_NOISES[::-1]:  # absolute σ first, the fair relative σ last and bold
+            labels.append(f"{sigma_unit(noise)} ({noise})")
+            self.table_rows.append(None)
+            for kind, level in kinds:
+                labels.append(level_name(level, kind))
+                self.table_rows.append((noise, kind, level))
+        t.setRowCount(len(labels))
         t.setColumnCount(len(c.tolerances))
-        t.setVerticalHeaderLabels(rows)
+        t.setVerticalHeaderLabels(labels)
+        for i, key in enumerate(self.table_rows):
+            if i >= 3 and key is None:  # a heading row: the noise, its σ unit, over a band of the header colour
+                if len(c.tolerances) > 1:
+                    t.setSpan(i, 0, 1, len(c.tolerances))
+                band = QTableWidgetItem("")
+                band.setBackground(QColor(PALETTE.sunken))
+                t.setItem(i, 0, band)
         for j, row in enumerate(c.tolerances):
             role = "A" if j == 0 else ("B" if len(c.tolerances) == 2 else f"B{j}")
             header = QTableWidgetItem(f"{role}\n{row.name}")
             header.setToolTip(f"{row.name}\nsha256 {row.sha256}")
             t.setHorizontalHeaderItem(j, header)
-            values = [row.sha256[:10], f"{row.latent_rms:.4g}", fmt_percent(row.accuracy_at_zero, 3)]
-            values += [tolerance_label(x) for x in row.absolute + row.absolute_loss + row.data_scale + row.data_scale_loss]
-            for i, value in enumerate(values):
+            lists = {("isotropic", ABSOLUTE): row.absolute, ("isotropic", LOSS): row.absolute_loss,
+                     ("data-scale", ABSOLUTE): row.data_scale, ("data-scale", LOSS): row.data_scale_loss}
+            for i, key in enumerate(self.table_rows):
+                if key is None:
+                    if i >= 3:
+                        continue
+                    value = [row.sha256[:10], f"{row.latent_rms:.4g}", fmt_percent(row.accuracy_at_zero, 3)][i]
+                else:
+                    noise, kind, level = key
+                    value = tolerance_label(next((x for x in lists[(noise, kind)] if abs(x.level - level) < 1e-12), None))
                 item = QTableWidgetItem(value)
                 item.setTextAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
-                if i >= first_relative:
+                if key is not None and key[0] == "data-scale":
                     font = item.font()
                     font.setBold(True)
                     item.setFont(font)
-                if 3 <= i < first_relative and c.scale_warning:
+                if key is not None and key[0] == "isotropic" and c.scale_warning:
                     item.setForeground(QColor(PALETTE.ink_faint))
                     item.setToolTip("absolute σ: not comparable across these checkpoints, their latent scales differ")
                 t.setItem(i, j, item)
@@ -637,9 +659,8 @@ class ComparePanel(QWidget):
         notes = status_notes([x for row in c.tolerances for x in row.absolute + row.absolute_loss + row.data_scale
                               + row.data_scale_loss])
         self.table_note.setText(
-            "σ at a level: the largest σ before accuracy drops below it (accuracy ≥) or falls that many points below "
-            "its σ = 0 value (loss ≤). Relative σ is scale-free and compares fairly; absolute σ grows with the latent's "
-            "RMS." + "".join(f" {n}." for n in notes) + (" Absolute rows greyed: the scales differ." if c.scale_warning else "")
+            "Relative σ compares fairly; absolute σ grows with the latent's RMS (hover the table for the definitions)."
+            + "".join(f" {n}." for n in notes) + (" Absolute rows greyed: the scales differ." if c.scale_warning else "")
         )
 
     # ---- the side-by-side text -----------------------------------------------------------

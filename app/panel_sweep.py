@@ -87,7 +87,7 @@ class SweepPanel(QWidget):
         self.restore(DEFAULTS)
 
         summary = QHBoxLayout()
-        summary.setSpacing(18)
+        summary.setSpacing(14)
         self.status = QLabel("Run a sweep to see how accuracy falls with noise.")
         self.status.setObjectName("caption")
         # the headline: accuracy at σ = 0, then the σ up to which accuracy stays ≥ each level, then the σ up to
@@ -102,16 +102,19 @@ class SweepPanel(QWidget):
             summary.addWidget(rule)
             for level in levels:
                 labels[level] = self._figure(summary, f"σ at {level_name(level, kind)}")
+        # what was swept, beside the headline (wrapped, so the headline keeps its room); the hover readout
+        # gets a row of its own below
+        self.status.setWordWrap(True)
+        self.status.setMinimumWidth(260)
+        self.status.setAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignTop)
+        summary.addWidget(self.status, 1)
+        outer.addLayout(summary)
         self.readout = QLabel("")
         self.readout.setObjectName("caption")
         self.readout.setTextFormat(Qt.TextFormat.RichText)
         self.readout.setAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
-        right = QVBoxLayout()
-        right.addWidget(self.status, 0, Qt.AlignmentFlag.AlignRight)
-        right.addWidget(self.readout, 0, Qt.AlignmentFlag.AlignRight)
-        summary.addStretch(1)
-        summary.addLayout(right)
-        outer.addLayout(summary)
+        self.readout.setMinimumWidth(1)  # a long readout is cut at the right, never widens the window
+        outer.addWidget(self.readout)
 
         grid = QGridLayout()
         grid.setSpacing(10)
@@ -343,7 +346,7 @@ class SweepPanel(QWidget):
             plot.getPlotItem().enableAutoRange(x=True)
         s = result.settings
         self.status.setText(
-            f"{result.codec_name} · {s.noise} noise ({sigma_unit(s.noise)}) · {len(s.sigmas)} σ × {s.repeats} repeats · seed {s.seed} · "
+            f"{result.codec_name} · {s.noise} noise ({sigma_unit(s.noise)}) · {len(s.sigmas)} σ × {s.repeats} repeats · seed {s.seed}\n"
             f"latent RMS {result.latent_rms:.4g} · {result.decoded_chunks:,} chunks decoded in {result.elapsed_s:.1f} s"
         )
         self.readout.setText("hover a plot to read values · click to open that σ in the live view")

@@ -138,7 +138,9 @@ class TrendPanel(QWidget):
         pl.addWidget(self.accuracy_plot, 2)
 
         self.table = QTableWidget(0, len(COLUMNS))
-        self.table.setHorizontalHeaderLabels(COLUMNS)
+        # two-line headers keep the six tolerance columns narrow: "accuracy ≥" / "99 %", "loss ≤" / "1 pt"
+        self.table.setHorizontalHeaderLabels([c.replace("≥ ", "≥\n").replace("≤ ", "≤\n").replace(" at σ", "\nat σ")
+                                              for c in COLUMNS])
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
         self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
@@ -386,7 +388,7 @@ class TrendPanel(QWidget):
         span = max(steps) - min(steps)
         pad = span * 0.04 if span > 0 else 1.0
         tol_item.setXRange(min(steps) - pad, max(steps) + pad, padding=0)  # the accuracy plot follows (x-linked)
-        tol_item.setYRange(0, highest * 1.12 if highest > 0 else 1.0, padding=0)  # σ starts at 0
+        tol_item.setYRange(0, highest * 1.4 if highest > 0 else 1.0, padding=0)  # σ starts at 0; room for the legend
         acc_item.enableAutoRange(y=True)
 
     # ---- for export and reports ----------------------------------------------------------

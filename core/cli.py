@@ -101,6 +101,7 @@ def print_tolerance_table(results, stream=None) -> None:
     """Each sweep's accuracy at σ = 0, its accuracy-level and its loss tolerances, and the latent RMS."""
     from core.engine.noise import sigma_unit
     from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, level_percent, resolution_note, status_notes
+    from core.engine.tolerance import UNRESOLVABLE
 
     stream = stream or sys.stdout
     noise = results[0].settings.noise
@@ -131,7 +132,7 @@ def print_tolerance_table(results, stream=None) -> None:
     print(line(header), file=stream)
     for row in rows:
         print(line(row), file=stream)
-    notes = status_notes([t for r in results for t in r.tolerances + r.loss_tolerances])
+    notes = status_notes([t for r in results for t in r.tolerances + r.loss_tolerances], skip=[UNRESOLVABLE])  # said below
     if notes:
         print("; ".join(notes) + ".", file=stream)
     for r in results:

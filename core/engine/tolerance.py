@@ -182,9 +182,9 @@ def tolerances_of(sigmas: Sequence[float], accuracy: Sequence[float], tokens: in
             [loss_tolerance_at(sigmas, accuracy, loss, tokens) for loss in LOSS_LEVELS])
 
 
-def status_notes(tolerances: Sequence[Tolerance | Mapping[str, Any]]) -> list[str]:
-    """The meaning of every special status among `tolerances`, for a table's footnote."""
-    seen = {t.status if isinstance(t, Tolerance) else t.get("status") for t in tolerances}
+def status_notes(tolerances: Sequence[Tolerance | Mapping[str, Any]], skip: Sequence[str] = ()) -> list[str]:
+    """The meaning of every special status among `tolerances` (but those in `skip`), for a table's footnote."""
+    seen = {t.status if isinstance(t, Tolerance) else t.get("status") for t in tolerances} - set(skip)
     return [STATUS_MEANING[s] for s in STATUSES if s in seen and s in STATUS_MEANING]
 
 
@@ -193,6 +193,7 @@ def resolution_note(tokens: int, tolerances: Sequence[Tolerance]) -> str | None:
     missing = [t for t in tolerances if t.status == UNRESOLVABLE]
     if not missing:
         return None
-    names = ", ".join(t.name for t in missing)
-    return (f"{names}: not resolvable on {tokens:,} token{'s' if tokens != 1 else ''}; the Wilson 95 % interval of "
-            "the accuracy at σ = 0 is wider than the gap to the next level (use a longer text).")
+    on = f"on {tokens:,} token{'s' if tokens != 1 else ''}"
+    what = f"no tolerance is resolvable {on}" if len(missing) == len(tolerances) else \
+        ", ".join(t.name for t in missing) + f": not resolvable {on}"
+    return f"{what}; the Wilson 95 % interval of the accuracy at σ = 0 is wider than the gap to the next level (use a longer text)."

@@ -18,7 +18,7 @@ from core.engine.noise import NOISE_MODELS
 from core.engine.sweep import DEFAULT_NOISE, SweepResult
 from core.engine.tolerance import (
     ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, level_name, level_percent, resolution_note,
-    status_notes, tolerance_text,
+    UNRESOLVABLE, status_notes, tolerance_text,
 )
 from core.analyses.tokens import fragile_types
 from core.analyses.trend import TrendPoint, sort_points
@@ -115,7 +115,7 @@ def _tolerance_table_single(sweeps: Sequence[SweepResult]) -> str:
 def _tolerance_notes(sweeps: Sequence[SweepResult]) -> str:
     """What the special tolerance texts mean, and which tolerances the text is too short for."""
     every = [t for r in sweeps for t in r.tolerances + r.loss_tolerances]
-    notes = status_notes(every)
+    notes = status_notes(every, skip=[UNRESOLVABLE])  # each sweep's resolution note says it
     notes += [f"{r.codec_name}: {note}" for r in sweeps
               for note in [resolution_note(r.chunks.num_tokens, r.tolerances + r.loss_tolerances)] if note]
     return "".join(f"<p class=muted>{escape(n)}</p>" for n in dict.fromkeys(notes))
