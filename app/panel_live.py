@@ -217,7 +217,7 @@ class LivePanel(QWidget):
         entry = self.workbench.entry()
         noise = self.noise_model()
         value = self.sigma()
-        if noise == "isotropic" and entry is not None and entry.encoded is not None:
+        if NOISE_MODELS[noise].in_latent_units and entry is not None and entry.encoded is not None:
             rms = entry.encoded.latent_rms
             top = float(f"{RELATIVE_MAX * rms:.2g}") or RELATIVE_MAX
             self.slider.setMaximum(max(top, 1e-3))

@@ -175,11 +175,12 @@ def cmd_sweep(args: argparse.Namespace) -> int:
 
 def print_comparison(comparison, stream=None) -> None:
     from core.analyses.compare import ALPHA, SIGNIFICANT
+    from core.engine.noise import sigma_unit
     from core.engine.tolerance import ABSOLUTE, LOSS, levels_of, level_percent
 
     stream = stream or sys.stdout
     for kind, word in ((ABSOLUTE, "accuracy ≥"), (LOSS, "loss ≤")):
-        print(f"tolerance, {word} the level: absolute σ (isotropic) | relative σ (data-scale)", file=stream)
+        print(f"tolerance, {word} the level: " + " | ".join(f"{sigma_unit(n)} ({n})" for n in ("isotropic", "data-scale")), file=stream)
         heads = [level_percent(level, kind) for level in levels_of(kind)]
         print(f"{'checkpoint':<20} {'acc@σ=0':>9} {'RMS':>7} | " + " ".join(f"{h:>9}" for h in heads) + " | "
               + " ".join(f"{h:>9}" for h in heads), file=stream)
@@ -237,16 +238,16 @@ def cmd_trend(args: argparse.Namespace) -> int:
 
     points = []
     levels = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
-    print(f"{'':<47}{'accuracy ≥':<30}  loss ≤")
-    print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} " + " ".join(f"{level_percent(lv, k):>9}" for k, lv in levels[:3])
-          + "  " + " ".join(f"{level_percent(lv, k):>9}" for k, lv in levels[3:]))
+    print(f"{'':<48}{'accuracy ≥':<34}loss ≤")
+    print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[:3])
+          + "  " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[3:]))
     for point in trend(args.folder, text, settings, text_source=source):
         points.append(point)
         if point.error:
             print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} failed: {point.error}")
             continue
         tols = [point.tolerance(level, kind) for kind, level in levels]
-        cells = [f"{'—' if t is None else t.label():>9}" for t in tols]
+        cells = [f"{'—' if t is None else t.label():>10}" for t in tols]
         print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} {point.accuracy_at_zero * 100:8.3f}% "
               + " ".join(cells[:3]) + "  " + " ".join(cells[3:]), flush=True)
     if out is not None:

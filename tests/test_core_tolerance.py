@@ -141,3 +141,24 @@ def test_the_loss_tolerance_is_beside_the_absolute_one_in_the_report(lookup_code
     one = run_sweep(lookup_codec, chunk_text("The", lookup_codec), SweepSettings(sigmas=(0.0, 0.5), repeats=1, noise="isotropic"))
     html = build_report(sweeps=[one])
     assert "too few tokens" in html and "no tolerance is resolvable on 1 token" in html
+
+
+def test_trend_points_carry_both_kinds_and_read_older_trend_files():
+    from core.analyses.trend import TrendPoint, trend_csv
+
+    absolute, loss = tolerances_of(SIGMAS, CURVE, tokens=10_000)
+    point = TrendPoint("run/a.safetensors", "a", 100, "card", accuracy_at_zero=CURVE[0], tolerances=absolute,
+                       loss_tolerances=loss, latent_rms=1.0)
+    again = TrendPoint.from_dict(json.loads(json.dumps(point.to_dict())))
+    assert again.tolerances == absolute and again.loss_tolerances == loss
+    old = {"path": "run/b.safetensors", "name": "b", "step": 5, "step_source": "card", "sha256": "",
+           "accuracy_at_zero": 0.98, "latent_rms": 1.0, "error": None,
+           "tolerances": {"0.999": {"sigma": None, "status": "below_at_zero"}, "0.9": {"sigma": 0.275, "status": "ok"}}}
+    read = TrendPoint.from_dict(old)  # trend.json before this change: keyed by level, no loss tolerances
+    assert read.tolerance(0.9).sigma == 0.275 and read.tolerance(0.999).status == "below_at_zero"
+    assert read.tolerance(0.01, LOSS) is None
+    header, row = trend_csv([point]).splitlines()[:2]
+    cells = dict(zip(header.split(","), row.split(",")))
+    # worked by hand above: 90 % at 0.275; losses 0.05, 0.1444..., 0.3
+    assert cells["tol_90"] == "0.275" and cells["tol_99.9"] == ""
+    assert [float(cells[f"loss_tol_{p}"]) for p in ("0.1", "1", "10")] == pytest.approx([0.05, 0.1 + 0.1 * 0.008 / 0.018, 0.3], rel=1e-5)  # 6 digits

@@ -68,6 +68,7 @@ class NoiseModel:
     axis_label: str  # longer, under a plot's axis
     description: str  # the perturbed latent
     needs_variational: bool
+    in_latent_units: bool  # σ is in the latent's own units, so it grows with the latent's scale
     scale: Callable[["Encoded", int, int], "torch.Tensor"]
 
 
@@ -88,11 +89,11 @@ def _rms(encoded: Encoded, start: int, stop: int) -> torch.Tensor:
 NOISE_MODELS: Mapping[str, NoiseModel] = {
     m.name: m
     for m in (
-        NoiseModel("isotropic", "absolute σ", "σ (absolute)", "z = mean + σ · ε", False, _ones),
-        NoiseModel("posterior", "posterior σ", "σ in units of the posterior std", "z = mean + σ · std ⊙ ε", True,
+        NoiseModel("isotropic", "absolute σ", "σ (absolute)", "z = mean + σ · ε", False, True, _ones),
+        NoiseModel("posterior", "posterior σ", "σ in units of the posterior std", "z = mean + σ · std ⊙ ε", True, False,
                    _posterior_std),
         NoiseModel("data-scale", "relative σ", "σ relative to each latent dimension's RMS", "z = mean + σ · r ⊙ ε, "
-                   "r = each dimension's RMS over the text", False, _rms),
+                   "r = each dimension's RMS over the text", False, False, _rms),
     )
 }
 

@@ -123,7 +123,7 @@ def _tolerance_notes(sweeps: Sequence[SweepResult]) -> str:
 
 def _tolerance_table_comparison(comparison: Comparison) -> str:
     head = ("<table><tr><th class=l rowspan=3>checkpoint</th><th rowspan=3>accuracy at σ=0</th><th rowspan=3>latent RMS</th>"
-            f"<th colspan={len(_LEVELS)}>absolute σ (isotropic)</th><th colspan={len(_LEVELS)}>relative σ (data-scale)</th></tr>"
+            + "".join(f"<th colspan={len(_LEVELS)}>{NOISE_MODELS[n].unit} ({n})</th>" for n in ("isotropic", "data-scale")) + "</tr>"
             "<tr>" + _level_groups() * 2 + "</tr><tr>" + _level_heads() * 2 + "</tr>")
     rows = [head]
     for t in comparison.tolerances:
