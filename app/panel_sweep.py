@@ -20,7 +20,7 @@ from core.engine.noise import NOISE_MODELS, sigma_unit
 from core.outputs.report import provenance_caption
 from core.engine.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED, SweepResult, SweepSettings
 from core.engine.tolerance import (
-    ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, Tolerance, level_name, level_percent, resolution_note, tolerance_text,
+    ABSOLUTE, LOSS, LOSS_LEVELS, NO_ZERO, TOLERANCE_LEVELS, UNRESOLVABLE, Tolerance, level_name, level_percent, resolution_note, tolerance_text,
 )
 from core.analyses.views import error_rate_floor
 
@@ -169,6 +169,15 @@ class SweepPanel(QWidget):
         row.addLayout(box)
         return cap, value
 
+    @staticmethod
+    def _show_figure(value: QLabel, text: str, word: bool = False) -> None:
+        name = "figureWord" if word else "figure"
+        if value.objectName() != name:
+            value.setObjectName(name)
+            value.style().unpolish(value)
+            value.style().polish(value)
+        value.setText(text)
+
     # ---- settings ------------------------------------------------------------------------
 
     def settings_dict(self) -> dict:
@@ -251,7 +260,7 @@ class SweepPanel(QWidget):
             if item.legend is not None:
                 item.legend.clear()
         for _, value in [(self.zero_caption, self.zero_value), *self.tolerance_labels.values(), *self.loss_labels.values()]:
-            value.setText("—")
+            self._show_figure(value, "—")
             value.setToolTip("")
 
     def _log_toggled(self, on: bool) -> None:
@@ -364,7 +373,8 @@ class SweepPanel(QWidget):
                 cap, value = labels.get(tol.level, (None, None))
                 if value is None:
                     continue
-                value.setText(headline_text(tol))
+                # a status that is words, not a figure, is set smaller, so six of them fit
+                self._show_figure(value, headline_text(tol), word=tol.status in (UNRESOLVABLE, NO_ZERO))
                 cap.setToolTip(tolerance_tip(tol, acc0))
                 value.setToolTip(note or "")
         for style, level in zip(LEVEL_PEN_STYLES, TOLERANCE_LEVELS):
