@@ -24,16 +24,16 @@ from app.style import PALETTE, faded, fmt_percent, legend, pen, plot_widget
 from app.tokentext import TokenText, char_format
 from app.workers import Runner, Task
 from core.codecs.contract import opened
-from core.analyses.compare import Comparison, compare_codecs, unit_correctness
+from core.analyses.compare import ALPHA, COMPARISON_NOISES, SIGNIFICANT, Comparison, compare_codecs, unit_correctness
 from core.errors import SettingsError
 from core.outputs.report import provenance_caption
-from core.engine.sweep import SweepResult, tolerance_text
+from core.engine.noise import NOISE_MODELS, sigma_unit
+from core.engine.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED, SweepResult
 from core.engine.text import text_sha256
+from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, level_name, status_notes, tolerance_text
 
-DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 16, "spacing": "log", "zero": True, "repeats": 2, "seed": 0,
-            "main_noise": "data-scale"}
-LEVELS = (0.999, 0.99, 0.9)
-LEVEL_NAMES = {0.999: "99.9 %", 0.99: "99 %", 0.9: "90 %"}
+DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 16, "spacing": "log", "zero": True, "repeats": DEFAULT_REPEATS,
+            "seed": DEFAULT_SEED, "main_noise": DEFAULT_NOISE}
 # one colour per checkpoint; the first two (blue, amber) stay apart under red-green colour blindness
 CODEC_COLOURS = ("#2f6db5", "#c98a12", "#3b8f7c", "#8a5aa8", "#5d626a", "#b5527e")
 ONLY_A, ONLY_B, BOTH = 1, 2, 3
@@ -53,9 +53,9 @@ def _swatch(colour: str, size: int = 10) -> QIcon:
     return QIcon(pixmap)
 
 
-def tolerance_label(t: dict) -> str:
-    """How a tolerance stored as a dict ({"sigma", "status"}) reads in a table cell."""
-    return tolerance_text(t["sigma"], t["status"])
+def tolerance_label(t) -> str:
+    """How a tolerance (a Tolerance or its JSON form) reads in a table cell."""
+    return tolerance_text(t)
 
 
 def mark_formats() -> dict[int, QTextCharFormat]:
@@ -159,6 +159,7 @@ class ComparePanel(QWidget):
         self.text = ""
         self.text_source = ""
         self.comparison: Comparison | None = None
+        self.table_rows: list[tuple[str, str, float] | None] = []  # (noise, kind, level) per table row
         self.view: SideBySide | None = None
         self.log_x = True
         self._run_task: Task | None = None
@@ -201,10 +202,10 @@ class ComparePanel(QWidget):
         cv.addLayout(pick)
 
         self.grid_controls = GridControls(
-            DEFAULTS, noise_key="main_noise", noise_label="main noise", noise_choices=("data-scale", "isotropic"),
+            DEFAULTS, noise_key="main_noise", noise_label="main noise", noise_choices=COMPARISON_NOISES,
             noise_tip="the noise model of the curves, the paired tests and the text view; "
                       "tolerances are shown under both",
-            sigma_label="relative σ from", order=("repeats", "seed", "noise"))
+            sigma_label=f"{NOISE_MODELS['data-scale'].unit} from", order=("repeats", "seed", "noise"))
         g = self.grid_controls
         self.start, self.stop, self.points, self.spacing, self.zero = g.start, g.stop, g.points, g.spacing, g.zero
         self.repeats, self.seed, self.main_noise = g.repeats, g.seed, g.noise
@@ -264,12 +265,14 @@ class ComparePanel(QWidget):
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         self.table.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
         self.table.setFocusPolicy(Qt.FocusPolicy.NoFocus)
-        self.table.verticalHeader().setDefaultSectionSize(22)
+        self.table.verticalHeader().setDefaultSectionSize(18)
         self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
         self.table.horizontalHeader().setTextElideMode(Qt.TextElideMode.ElideMiddle)
         self.table.setVerticalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAsNeeded)
-        self.table.setToolTip("tolerance: the largest σ before token accuracy first drops below the level, interpolated on "
-                              "the grid; absolute σ depends on the latent's scale, relative (data-scale) σ does not")
+        self.table.setToolTip("σ at accuracy ≥ a level: the largest σ before token accuracy first drops below it; σ at "
+                              "loss ≤ a level: the largest σ before it falls that many points below its σ = 0 value. Both "
+                              "interpolated on the grid; absolute σ depends on the latent's scale, relative (data-scale) σ "
+                              "does not")
         table_box.addWidget(self.table)
         self.table_note = caption("")
         self.table_note.setWordWrap(True)
@@ -277,8 +280,8 @@ class ComparePanel(QWidget):
         table_box.addStretch(1)
         table_widget = QWidget()
         table_widget.setLayout(table_box)
-        table_widget.setMinimumWidth(330)
-        tl.addWidget(table_widget, 4)
+        table_widget.setMinimumWidth(430)
+        tl.addWidget(table_widget, 5)
 
         bottom, bl = card(margins=(12, 8), spacing=6)
         head = QHBoxLayout()
@@ -333,7 +336,7 @@ class ComparePanel(QWidget):
         split.addWidget(bottom)
         split.setStretchFactor(0, 5)
         split.setStretchFactor(1, 4)
-        split.setSizes([420, 340])
+        split.setSizes([470, 290])
         outer.addWidget(split, 1)
 
         self.selected_lines = []
@@ -525,7 +528,7 @@ class ComparePanel(QWidget):
         )
 
     def _sigma_unit(self) -> str:
-        return "relative σ" if self.comparison is None or self.comparison.main_noise == "data-scale" else "absolute σ"
+        return sigma_unit(self.comparison.main_noise if self.comparison is not None else DEFAULT_NOISE)
 
     def _draw_plots(self) -> None:
         p = PALETTE
@@ -547,7 +550,7 @@ class ComparePanel(QWidget):
             item.setLogMode(x=log)
             item.setLabel("bottom", f"{self._sigma_unit()} ({c.main_noise} noise)", color=p.ink_soft, **{"font-size": "8pt"})
         legend(acc_item, offset=(10, -10))
-        for level in LEVELS:
+        for level in TOLERANCE_LEVELS:
             acc_item.addItem(pg.InfiniteLine(pos=level, angle=0, movable=False, pen=pen(p.ink_faint, 1, Qt.PenStyle.DotLine)),
                              ignoreBounds=True)
         for i, r in enumerate(main):
@@ -577,7 +580,7 @@ class ComparePanel(QWidget):
             keep = sigmas > 0 if log else np.ones(len(sigmas), dtype=bool)
             x = sigmas[keep]
             diff = np.array([row.difference * 100 for row in pair.rows])[keep]
-            significant = np.array(pair.significant(0.05))[keep]
+            significant = np.array(pair.significant(ALPHA))[keep]
             diff_item.addItem(pg.PlotDataItem(x, diff, pen=pen(colour, 2), name=f"{pair.name_b} − {pair.name_a}"))
             if (~significant).any():
                 diff_item.addItem(pg.PlotDataItem(x[~significant], diff[~significant], pen=None, symbol="o", symbolSize=6,
@@ -587,10 +590,10 @@ class ComparePanel(QWidget):
                                                   symbolBrush=p.ink, symbolPen=pen(p.surface, 1)))
         unit = c.paired[0].unit if c.paired else "token"
         diff_item.setLabel("left", f"B − A, percentage points (per {unit})", color=p.ink_soft, **{"font-size": "8pt"})
-        any_significant = any(any(pair.significant(0.05)) for pair in c.paired)
+        any_significant = any(any(pair.significant(ALPHA)) for pair in c.paired)
         diff_item.setTitle(
             f"<span style='color:{p.ink}; font-size:9pt; font-weight:600'>Paired difference B − A</span>"
-            f"<span style='color:{p.ink_soft}; font-size:8pt'>&nbsp;&nbsp;&nbsp;◆ McNemar p &lt; 0.05"
+            f"<span style='color:{p.ink_soft}; font-size:8pt'>&nbsp;&nbsp;&nbsp;◆ McNemar {SIGNIFICANT.replace('<', '&lt;')}"
             f"{'' if any_significant else ' (none on this grid)'}&nbsp;&nbsp;○ not significant</span>", justify="left")
         acc_item.enableAutoRange(x=True)
         diff_item.enableAutoRange(y=True)
@@ -600,41 +603,65 @@ class ComparePanel(QWidget):
         t = self.table
         t.clear()
         c = self.comparison
+        self.table_rows = []
         if c is None:
             t.setRowCount(0)
             t.setColumnCount(0)
             t.setFixedHeight(60)
             self.table_note.setText("")
             return
-        rows = (["sha256", "latent RMS", "accuracy, σ = 0"]
-                + [f"absolute {LEVEL_NAMES[l]}" for l in LEVELS]
-                + [f"relative {LEVEL_NAMES[l]}" for l in LEVELS])
-        t.setRowCount(len(rows))
+        # rows: the facts, then per noise a heading row and its accuracy-level and loss tolerances
+        kinds = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
+        labels = ["sha256", "latent RMS", "accuracy, σ = 0"]
+        self.table_rows = [None, None, None]  # (noise, kind, level) of each tolerance row, None for the others
+        for noise in COMPARISON_NOISES[::-1]:  # absolute σ first, the fair relative σ last and bold
+            labels.append(f"{sigma_unit(noise)} ({noise})")
+            self.table_rows.append(None)
+            for kind, level in kinds:
+                labels.append(level_name(level, kind))
+                self.table_rows.append((noise, kind, level))
+        t.setRowCount(len(labels))
         t.setColumnCount(len(c.tolerances))
-        t.setVerticalHeaderLabels(rows)
+        t.setVerticalHeaderLabels(labels)
+        for i, key in enumerate(self.table_rows):
+            if i >= 3 and key is None:  # a heading row: the noise, its σ unit, over a band of the header colour
+                if len(c.tolerances) > 1:
+                    t.setSpan(i, 0, 1, len(c.tolerances))
+                band = QTableWidgetItem("")
+                band.setBackground(QColor(PALETTE.sunken))
+                t.setItem(i, 0, band)
         for j, row in enumerate(c.tolerances):
             role = "A" if j == 0 else ("B" if len(c.tolerances) == 2 else f"B{j}")
             header = QTableWidgetItem(f"{role}\n{row.name}")
             header.setToolTip(f"{row.name}\nsha256 {row.sha256}")
             t.setHorizontalHeaderItem(j, header)
-            values = [row.sha256[:10], f"{row.latent_rms:.4g}", fmt_percent(row.accuracy_at_zero, 3)]
-            values += [tolerance_label(x) for x in row.absolute] + [tolerance_label(x) for x in row.data_scale]
-            for i, value in enumerate(values):
+            lists = {("isotropic", ABSOLUTE): row.absolute, ("isotropic", LOSS): row.absolute_loss,
+                     ("data-scale", ABSOLUTE): row.data_scale, ("data-scale", LOSS): row.data_scale_loss}
+            for i, key in enumerate(self.table_rows):
+                if key is None:
+                    if i >= 3:
+                        continue
+                    value = [row.sha256[:10], f"{row.latent_rms:.4g}", fmt_percent(row.accuracy_at_zero, 3)][i]
+                else:
+                    noise, kind, level = key
+                    value = tolerance_label(next((x for x in lists[(noise, kind)] if abs(x.level - level) < 1e-12), None))
                 item = QTableWidgetItem(value)
                 item.setTextAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
-                if i >= 6:
+                if key is not None and key[0] == "data-scale":
                     font = item.font()
                     font.setBold(True)
                     item.setFont(font)
-                if 3 <= i < 6 and c.scale_warning:
+                if key is not None and key[0] == "isotropic" and c.scale_warning:
                     item.setForeground(QColor(PALETTE.ink_faint))
                     item.setToolTip("absolute σ: not comparable across these checkpoints, their latent scales differ")
                 t.setItem(i, j, item)
         height = t.horizontalHeader().sizeHint().height() + sum(t.rowHeight(i) for i in range(t.rowCount())) + 2 * t.frameWidth()
         t.setFixedHeight(height + 2)
+        notes = status_notes([x for row in c.tolerances for x in row.absolute + row.absolute_loss + row.data_scale
+                              + row.data_scale_loss])
         self.table_note.setText(
-            "relative σ is scale-free and compares fairly; absolute σ grows with the latent's RMS. "
-            "“> x”: never dropped on the grid." + (" Absolute columns greyed: the scales differ." if c.scale_warning else "")
+            "Relative σ compares fairly; absolute σ grows with the latent's RMS (hover the table for the definitions)."
+            + "".join(f" {n}." for n in notes) + (" Absolute rows greyed: the scales differ." if c.scale_warning else "")
         )
 
     # ---- the side-by-side text -----------------------------------------------------------
@@ -652,7 +679,7 @@ class ComparePanel(QWidget):
                 self.pair_box.addItem(pair.name_b)
             # start at the first σ where A and B differ significantly, else where they disagree most
             rows = c.paired[0].rows if c.paired else []
-            significant = [i for i, r in enumerate(rows) if r.pvalue < 0.05]
+            significant = [i for i, r in enumerate(rows) if r.pvalue < ALPHA]
             start = significant[0] if significant else (int(np.argmax([r.a_only + r.b_only for r in rows])) if rows else 0)
             self.sigma_box.setCurrentIndex(start)
             self.pair_box.setCurrentIndex(0)
@@ -728,7 +755,7 @@ class ComparePanel(QWidget):
             f"&nbsp;&nbsp;<span style='background:{WASH[ONLY_B]}'>&nbsp;only B right&nbsp;</span>"
             f" <span style='color:{PALETTE.ink_soft}'>{row.b_only:,} {units}</span>")
         self.legend_both.setText(f"&nbsp;&nbsp;<span style='color:{PALETTE.ink_faint}'>faint: both wrong</span>")
-        stars = "significant, p < 0.05" if row.pvalue < 0.05 else "not significant"
+        stars = f"significant, {SIGNIFICANT}" if row.pvalue < ALPHA else "not significant"
         note = (f"paired per {pair.unit}: accuracy A {fmt_percent(row.accuracy_a, 3)}, B {fmt_percent(row.accuracy_b, 3)}; "
                 f"McNemar ({row.method}) p = {row.pvalue:.3g}, {stars}")
         if pair.unit == "character":

@@ -17,7 +17,7 @@ from core.analyses.compare import Comparison, read_comparison
 from core.errors import ChunkscopeError
 from core.outputs.report import build_report
 from core.outputs.files import write_text_atomic
-from core.engine.sweep import SweepResult, read_sweep
+from core.engine.sweep import DEFAULT_NOISE, SweepResult, read_sweep
 from core.analyses.trend import TrendPoint
 from core.outputs.workspace import WORKSPACE_SUFFIX, Workspace, load_workspace, save_workspace
 
@@ -28,7 +28,7 @@ WORKSPACE_FILTER = f"chunkscope workspace (*{WORKSPACE_SUFFIX})"
 # ---- without dialogs (tests and scripts call these) ---------------------------------------
 
 def save_report(path: str | Path, sweeps: Sequence[SweepResult] = (), comparison: Comparison | None = None,
-                trend_points: Sequence[TrendPoint] = (), trend_noise: str = "data-scale",
+                trend_points: Sequence[TrendPoint] = (), trend_noise: str = DEFAULT_NOISE,
                 title: str = "chunkscope report", force: bool = False) -> Path:
     """Write a self-contained HTML report of what is loaded and computed, atomically."""
     try:
@@ -82,14 +82,10 @@ def open_trend_file(path: str | Path) -> list[TrendPoint]:
         path = path / "trend.json"
     try:
         rows = json.loads(path.read_text(encoding="utf-8"))
-        points = []
-        for row in rows:
-            row = dict(row)
-            row["tolerances"] = {float(k): v for k, v in row.get("tolerances", {}).items()}
-            points.append(TrendPoint(**row))
+        points = [TrendPoint.from_dict(row) for row in rows]
     except FileNotFoundError:
         raise ChunkscopeError(f"{path.name} does not exist.") from None
-    except (ValueError, TypeError, AttributeError) as exc:
+    except (ValueError, TypeError, AttributeError, KeyError) as exc:
         raise ChunkscopeError(f"{path.name} is not a trend.json written by chunkscope trend ({exc}).") from None
     return points
 

@@ -8,12 +8,13 @@ import json
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import Any, Callable, Iterator
 
 from core.codecs.checkpoint import load_codec
 from core.errors import ChunkscopeError, SweepCancelled
 from core.engine.sweep import TOLERANCE_LEVELS, SweepResult, SweepSettings, run_sweep
 from core.engine.text import chunk_text
+from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, Tolerance
 from core.outputs.files import Outputs, OutputRefusedError, check_target, check_writable
 
 STEP_KEYS = ("step", "steps_done", "global_step", "steps")
@@ -43,17 +44,36 @@ class TrendPoint:
     step_source: str  # "card", "file name" or "none"
     sha256: str = ""
     accuracy_at_zero: float | None = None
-    tolerances: dict[float, dict] = field(default_factory=dict)  # level -> {"sigma", "status"}
+    tolerances: list[Tolerance] = field(default_factory=list)  # kind "absolute"
     latent_rms: float | None = None
     error: str | None = None
     result: SweepResult | None = None
+    loss_tolerances: list[Tolerance] = field(default_factory=list)  # kind "loss"
+
+    def tolerance(self, level: float, kind: str = ABSOLUTE) -> Tolerance | None:
+        for t in self.loss_tolerances if kind == LOSS else self.tolerances:
+            if abs(t.level - level) < 1e-12:
+                return t
+        return None
 
     def to_dict(self) -> dict:
         return {
             "path": self.path, "name": self.name, "step": self.step, "step_source": self.step_source,
             "sha256": self.sha256, "accuracy_at_zero": self.accuracy_at_zero, "latent_rms": self.latent_rms,
-            "tolerances": {str(k): v for k, v in self.tolerances.items()}, "error": self.error,
+            "tolerances": [t.to_dict() for t in self.tolerances],
+            "loss_tolerances": [t.to_dict() for t in self.loss_tolerances], "error": self.error,
         }
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> "TrendPoint":
+        """A point of trend.json back; older files keyed the tolerances by level and had no loss tolerances."""
+        data = dict(data)
+        tolerances = data.pop("tolerances", [])
+        if isinstance(tolerances, dict):
+            tolerances = [{"level": float(k), **v} for k, v in tolerances.items()]
+        loss = data.pop("loss_tolerances", [])
+        return cls(**data, tolerances=[Tolerance.from_dict(t) for t in tolerances],
+                   loss_tolerances=[Tolerance.from_dict(t, LOSS) for t in loss])
 
 
 def checkpoints_in(folder: str | Path) -> list[Path]:
@@ -104,7 +124,7 @@ def trend(
         acc0 = result.curves[0].token_accuracy if result.sigmas[0] == 0 else None
         yield TrendPoint(
             str(path), codec.name, step, source, sha256=codec.sha256, accuracy_at_zero=acc0,
-            tolerances={t.level: {"sigma": t.sigma, "status": t.status} for t in result.tolerances},
+            tolerances=list(result.tolerances), loss_tolerances=list(result.loss_tolerances),
             latent_rms=result.latent_rms, result=result,
         )
 
@@ -113,11 +133,18 @@ def sort_points(points: list[TrendPoint]) -> list[TrendPoint]:
     return sorted(points, key=lambda p: (p.step is None, p.step if p.step is not None else 0, p.name))
 
 
-TREND_CSV_COLUMNS = [
-    "name", "step", "step_source", "status", "accuracy_at_sigma0",
-    "tol_99.9", "tol_99.9_status", "tol_99", "tol_99_status", "tol_90", "tol_90_status",
-    "latent_rms", "sha256", "error",
-]
+TREND_LEVELS = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
+
+
+def _column(kind: str, level: float) -> str:
+    return f"{'tol' if kind == ABSOLUTE else 'loss_tol'}_{level * 100:g}"  # accuracy in % or a loss in points
+
+
+TREND_CSV_COLUMNS = (
+    ["name", "step", "step_source", "status", "accuracy_at_sigma0"]
+    + [name for kind, level in TREND_LEVELS for name in (_column(kind, level), _column(kind, level) + "_status")]
+    + ["latent_rms", "sha256", "error"]
+)
 NOT_MEASURED = "not measured"
 
 
@@ -130,12 +157,12 @@ def trend_csv(points: list[TrendPoint]) -> str:
     writer.writerow(TREND_CSV_COLUMNS)
     for p in sort_points(points):
         cells: list = []
-        for level in TOLERANCE_LEVELS:
-            t = p.tolerances.get(level)
-            if p.error is not None or not t:
+        for kind, level in TREND_LEVELS:
+            t = p.tolerance(level, kind)
+            if p.error is not None or t is None:
                 cells += ["", NOT_MEASURED]
             else:
-                cells += ["" if t.get("sigma") is None else f"{t['sigma']:.6g}", t.get("status", "")]
+                cells += ["" if t.sigma is None else f"{t.sigma:.6g}", t.status]
         writer.writerow(
             [p.name, "" if p.step is None else p.step, p.step_source, "error" if p.error is not None else "ok",
              "" if p.accuracy_at_zero is None else f"{p.accuracy_at_zero:.6f}"]
