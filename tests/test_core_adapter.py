@@ -265,3 +265,25 @@ def test_code_beside_a_checkpoint_never_runs(user_model, small_checkpoint, tmp_p
     with pytest.raises(ChunkscopeError):
         open_codec(checkpoint)  # a .pt without an adapter: the built-in loader refuses it in one sentence
     assert not marker.exists()
+
+
+def test_report_through_adapter(user_model, tmp_path, capsys):
+    adapter, checkpoint = user_model
+    text = tmp_path / "notes.txt"
+    text.write_text(TEXT, encoding="utf-8")
+    out = tmp_path / "r.html"
+    assert main(["report", str(checkpoint), "--adapter", str(adapter), "--text", str(text), "--out", str(out),
+                 "--sigmas", "0,1", "--repeats", "1", "--quiet"]) == 0
+    assert out.read_text(encoding="utf-8").lstrip().lower().startswith("<!doctype html")
+    assert "running the adapter code in" in capsys.readouterr().err
+
+
+def test_adapter_line_is_printed_before_its_code_runs(user_model, tmp_path, capsys):
+    """The command line names the file whose code it runs even when that code then fails."""
+    _, checkpoint = user_model
+    bad = tmp_path / "fails.py"
+    bad.write_text("def load(path):\n    raise RuntimeError('boom')\n", encoding="utf-8")
+    assert main(["sweep", str(checkpoint), "--adapter", str(bad), "--out", str(tmp_path / "o"), "--quiet"]) == 2
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert lines[0] == f"chunkscope: running the adapter code in {bad.absolute()} (sha256 {file_sha256(bad)})"
+    assert lines[1].startswith("chunkscope: The adapter") and "RuntimeError: boom" in lines[1] and len(lines) == 2
