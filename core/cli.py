@@ -78,7 +78,7 @@ def announce_adapter(adapter: str | None, paths, stream=None) -> None:
     from core.codecs.adapter import adapter_identity
     from core.codecs.open import uses_adapter
 
-    if not any(uses_adapter(p) for p in paths):
+    if not any(Path(p).exists() and uses_adapter(p) for p in paths):  # a missing checkpoint is refused before any code runs
         return
     what, sha = adapter_identity(adapter)
     print(f"chunkscope: running the adapter code in {what}" + (f" (sha256 {sha})" if sha else ""), file=stream or sys.stderr)

@@ -232,6 +232,13 @@ def test_missing_checkpoint_is_said_before_the_adapter_runs(user_model, tmp_path
     assert not marker.exists()
 
 
+def test_cli_names_no_adapter_when_no_checkpoint_exists(user_model, tmp_path, capsys):
+    adapter, _ = user_model
+    assert main(["info", str(tmp_path / "nothing_here.pt"), "--adapter", str(adapter)]) == 2
+    err = capsys.readouterr().err
+    assert "running the adapter" not in err and err.strip() == f"chunkscope: {tmp_path / 'nothing_here.pt'} does not exist."
+
+
 def test_checkpoint_the_adapter_cannot_read(user_model, tmp_path):
     adapter, checkpoint = user_model
     junk = tmp_path / "junk.pt"
