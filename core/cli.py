@@ -64,16 +64,43 @@ def _load_text_arg(path: str | None) -> tuple[str, str]:
     return load_text(path), str(path)
 
 
+ADAPTER_HELP = (
+    "a Python adapter that opens the checkpoints: FILE.py (its load(path)), FILE.py:FUNC, or the name of an "
+    "installed chunkscope.adapters entry point; it opens every checkpoint that is not a chunkscope safetensors "
+    "file or ONNX codec folder (those open as always). Runs that file's code."
+)
+
+
+def announce_adapter(adapter: str | None, paths, stream=None) -> None:
+    """Before any adapter code runs: one line naming the file whose code runs, and its sha256."""
+    if not adapter:
+        return
+    from core.codecs.adapter import adapter_identity
+    from core.codecs.open import uses_adapter
+
+    if not any(Path(p).exists() and uses_adapter(p) for p in paths):  # a missing checkpoint is refused before any code runs
+        return
+    what, sha = adapter_identity(adapter)
+    print(f"chunkscope: running the adapter code in {what}" + (f" (sha256 {sha})" if sha else ""), file=stream or sys.stderr)
+
+
+def open_checkpoints(paths, adapter: str | None = None) -> list:
+    from core.codecs.open import open_checkpoint
+
+    paths = list(paths)
+    announce_adapter(adapter, paths)
+    return [open_checkpoint(p, adapter) for p in paths]
+
+
 def _fmt(value) -> str:
     return "—" if value is None else f"{value:.4g}"
 
 
 def cmd_info(args: argparse.Namespace) -> int:
-    from core.codecs.checkpoint import load_codec
     from core.engine.health import latent_health
     from core.engine.text import chunk_text
 
-    codec = load_codec(args.checkpoint)
+    (codec,) = open_checkpoints([args.checkpoint], args.adapter)
     text, source = _load_text_arg(args.text)
     chunks = chunk_text(text, codec, source)
     health = latent_health(codec, chunks)
@@ -180,7 +207,6 @@ def _check_outputs(targets: list[Path], force: bool, recognise, folder: bool) ->
 
 
 def cmd_sweep(args: argparse.Namespace) -> int:
-    from core.codecs.checkpoint import load_codec
     from core.engine.sweep import SWEEP_FOLDER, run_sweep
     from core.engine.text import chunk_text
     from core.outputs.files import OutputRefusedError, Outputs
@@ -190,7 +216,7 @@ def cmd_sweep(args: argparse.Namespace) -> int:
     if out.exists() and not out.is_dir():
         raise OutputRefusedError(f"{out} is a file, and sweep results go into a folder; choose another --out.")
     text, source = _load_text_arg(args.text)
-    codecs = [load_codec(p) for p in args.checkpoints]
+    codecs = open_checkpoints(args.checkpoints, args.adapter)
     names = [c.name for c in codecs]
     if len(set(names)) != len(names):
         raise ChunkscopeError("two checkpoints share a file name, so their output folders would collide; rename one.")
@@ -253,13 +279,12 @@ def _comparison_from_args(args, codecs, text, source, progress=None):
 
 def cmd_compare(args: argparse.Namespace) -> int:
     from core.analyses.compare import COMPARE_FOLDER
-    from core.codecs.checkpoint import load_codec
 
     _settings_from_args(args)
     out = Path(args.out)
     _check_outputs([out], args.force, COMPARE_FOLDER, folder=True)
     text, source = _load_text_arg(args.text)
-    codecs = [load_codec(p) for p in args.checkpoints]
+    codecs = open_checkpoints(args.checkpoints, args.adapter)
     if len({c.name for c in codecs}) != len(codecs):
         raise ChunkscopeError("two checkpoints share a file name; rename one so the results can be told apart.")
     progress = None if args.quiet else TerminalProgress("compare")
@@ -275,7 +300,7 @@ def cmd_trend(args: argparse.Namespace) -> int:
     from core.outputs.files import OutputExistsError
 
     settings = _settings_from_args(args)
-    checkpoints_in(args.folder)  # a missing or empty folder is said before the table starts
+    paths = checkpoints_in(args.folder, args.adapter)  # a missing or empty folder is said before the table starts
     out = Path(args.out) if args.out else None
     if out is not None:
         try:
@@ -285,12 +310,13 @@ def cmd_trend(args: argparse.Namespace) -> int:
     text, source = _load_text_arg(args.text)
     from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, level_percent
 
+    announce_adapter(args.adapter, paths)
     points = []
     levels = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
     print(f"{'':<48}{'accuracy ≥':<34}loss ≤")
     print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[:3])
           + "  " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[3:]))
-    for point in trend(args.folder, text, settings, text_source=source):
+    for point in trend(args.folder, text, settings, text_source=source, adapter=args.adapter):
         points.append(point)
         if point.error:
             print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} failed: {point.error}")
@@ -316,13 +342,12 @@ def is_report_file(path: Path) -> bool:
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from core.codecs.checkpoint import load_codec
     from core.analyses.compare import read_comparison
     from core.outputs.files import write_text_atomic
     from core.outputs.report import build_report
     from core.engine.sweep import read_sweep, run_sweep
     from core.engine.text import chunk_text
-    from core.analyses.trend import trend
+    from core.analyses.trend import checkpoints_in, trend
 
     out = Path(args.out)
     if not args.inputs and not args.trend:
@@ -331,8 +356,13 @@ def cmd_report(args: argparse.Namespace) -> int:
     _check_outputs([out], args.force, is_report_file, folder=False)
     sweeps, comparison, points = [], None, []
     paths = [Path(p) for p in args.inputs]
-    folders = [p for p in paths if p.is_dir()]
-    files = [p for p in paths if not p.is_dir()]
+    from core.codecs.onnx import is_onnx_codec
+
+    def is_result_folder(p: Path) -> bool:
+        return p.is_dir() and not is_onnx_codec(p) and ((p / "compare.json").exists() or (p / "sweep.json").exists() or not args.adapter)
+
+    folders = [p for p in paths if is_result_folder(p)]
+    files = [p for p in paths if not is_result_folder(p)]
     for folder in folders:
         if (folder / "compare.json").exists():
             comparison = read_comparison(folder)
@@ -341,14 +371,16 @@ def cmd_report(args: argparse.Namespace) -> int:
     if files or args.trend:
         text, source = _load_text_arg(args.text)
     if files:
-        codecs = [load_codec(p) for p in files]
+        codecs = open_checkpoints(files, args.adapter)
         if len(codecs) >= 2:
             comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"))
         else:
             chunks = chunk_text(text, codecs[0], source)
             sweeps.append(run_sweep(codecs[0], chunks, settings, text_source=source, progress=None if args.quiet else TerminalProgress(codecs[0].name[:16])))
     if args.trend:
-        points = list(trend(args.trend, text, settings, text_source=source))
+        if not files:
+            announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter))
+        points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter))
     html = build_report(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise, title=args.title)
     write_text_atomic(out, html, force=args.force, recognise=is_report_file)
     print(f"wrote {out} ({len(html) / 1024:.0f} KiB, self-contained)", file=sys.stderr)
@@ -388,12 +420,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("info", help="describe a checkpoint and its latent health", description="Architecture, sizes, parameter count, sha256, card and latent health of one checkpoint.")
     p.add_argument("checkpoint")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     p.add_argument("--text", help="UTF-8 text file for the latent health (default: the bundled demo text)")
     p.add_argument("--json", action="store_true", help="print JSON instead of text")
     p.set_defaults(func=cmd_info)
 
     p = sub.add_parser("sweep", help="sweep checkpoints over a sigma grid", description="Encode a text once per checkpoint, then perturb, decode and score it at every sigma; write DIR/<checkpoint>/sweep.json, curves.csv, tokens.csv.")
     p.add_argument("checkpoints", nargs="+", metavar="CKPT")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     add_sweep_arguments(p)
     p.add_argument("--out", default="results", help="output folder (default: results)")
     p.add_argument("--force", action="store_true", help="replace existing output folders")
@@ -407,6 +441,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("compare", help="compare checkpoints on one text, paired", description="Sweep two or more checkpoints on the same text with the same noise seed, under data-scale and isotropic noise; write tolerances side by side, the curves and McNemar tests per sigma.")
     p.add_argument("checkpoints", nargs="+", metavar="CKPT")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     add_sweep_arguments(p, noise_choices=COMPARISON_NOISES)
     p.add_argument("--abs-sigmas", help="grid for the isotropic (absolute) sweep (default: the relative grid times the largest latent RMS)")
     p.add_argument("--out", default="comparison", help="output folder (default: comparison)")
@@ -415,6 +450,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("trend", help="tolerance through a training run (a folder of checkpoints)", description="Sweep every checkpoint in a folder and report accuracy at sigma 0 and the 99.9/99/90 % tolerances against training step (from each card, else from the file name).")
     p.add_argument("folder")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     add_sweep_arguments(p)
     p.add_argument("--out", help="write trend.csv and trend.json into this folder")
     p.add_argument("--force", action="store_true", help="replace existing output files")
@@ -422,6 +458,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("report", help="one self-contained HTML report", description="Write one self-contained HTML file (inline plots, no outside links) from checkpoints (swept or compared on the text), or from folders written by 'sweep' or 'compare'.")
     p.add_argument("inputs", nargs="*", metavar="INPUT", help="checkpoints, or folders written by 'sweep' / 'compare'")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     add_sweep_arguments(p, noise_choices=COMPARISON_NOISES)
     p.add_argument("--trend", metavar="FOLDER", help="also sweep a folder of training checkpoints")
     p.add_argument("--title", default="chunkscope report")

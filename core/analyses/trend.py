@@ -10,7 +10,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterator
 
-from core.codecs.checkpoint import load_codec
+from core.codecs.open import checkpoints_in_folder, open_checkpoint
 from core.errors import ChunkscopeError, SweepCancelled
 from core.engine.sweep import TOLERANCE_LEVELS, SweepResult, SweepSettings, run_sweep
 from core.engine.text import chunk_text
@@ -76,15 +76,16 @@ class TrendPoint:
                    loss_tolerances=[Tolerance.from_dict(t, LOSS) for t in loss])
 
 
-def checkpoints_in(folder: str | Path) -> list[Path]:
+def checkpoints_in(folder: str | Path, adapter: str | None = None) -> list[Path]:
     folder = Path(folder)
     if not folder.exists():
         raise ChunkscopeError(f"{folder} does not exist.")
     if not folder.is_dir():
         raise ChunkscopeError(f"{folder} is not a folder.")
-    paths = sorted(folder.glob("*.safetensors"))
+    paths = checkpoints_in_folder(folder, adapter)
     if not paths:
-        raise ChunkscopeError(f"{folder} holds no .safetensors checkpoints.")
+        what = "checkpoints" if adapter else ".safetensors checkpoints or ONNX codec folders"
+        raise ChunkscopeError(f"{folder} holds no {what}.")
     return paths
 
 
@@ -95,14 +96,17 @@ def trend(
     text_source: str = "",
     should_stop: Callable[[], bool] | None = None,
     progress: Callable[[int, int], None] | None = None,
+    adapter: str | None = None,
 ) -> Iterator[TrendPoint]:
-    """Yield one point per checkpoint as it finishes; a bad checkpoint yields a point with `error`."""
-    paths = checkpoints_in(folder)
+    """Yield one point per checkpoint as it finishes; a bad checkpoint yields a point with `error`.
+
+    `adapter` opens every checkpoint that is not built-in or ONNX (`open_checkpoint`)."""
+    paths = checkpoints_in(folder, adapter)
     for index, path in enumerate(paths):
         if should_stop is not None and should_stop():
             raise SweepCancelled()
         try:
-            codec = load_codec(path)
+            codec = open_checkpoint(path, adapter)
         except ChunkscopeError as exc:
             step = step_from_name(path.stem)
             yield TrendPoint(str(path), path.stem, step, "file name" if step is not None else "none", error=str(exc))
