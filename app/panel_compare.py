@@ -25,14 +25,16 @@ from app.panel_compare_text import CompareTextView
 from app.style import PALETTE, codec_colour
 from app.workers import LatestTask, Runner, Task
 from core.codecs.contract import opened
-from core.analyses.compare import Comparison, compare_codecs
+from core.analyses.compare import COMPARISON_NOISES, Comparison, compare_codecs
 from core.analyses.compare_view import SideBySide
 from core.errors import SettingsError
 from core.outputs.report import provenance_caption
+from core.engine.noise import NOISE_MODELS
+from core.engine.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED
 from core.engine.text import text_sha256
 
-DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 16, "spacing": "log", "zero": True, "repeats": 2, "seed": 0,
-            "main_noise": "data-scale"}
+DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 16, "spacing": "log", "zero": True, "repeats": DEFAULT_REPEATS,
+            "seed": DEFAULT_SEED, "main_noise": DEFAULT_NOISE}
 
 
 def _swatch(colour: str, size: int = 10) -> QIcon:
@@ -104,10 +106,10 @@ class ComparePanel(QWidget):
         cv.addLayout(pick)
 
         self.grid_controls = GridControls(
-            DEFAULTS, noise_key="main_noise", noise_label="main noise", noise_choices=("data-scale", "isotropic"),
+            DEFAULTS, noise_key="main_noise", noise_label="main noise", noise_choices=COMPARISON_NOISES,
             noise_tip="the noise model of the curves, the paired tests and the text view; "
                       "tolerances are shown under both",
-            sigma_label="relative σ from", order=("repeats", "seed", "noise"))
+            sigma_label=f"{NOISE_MODELS['data-scale'].unit} from", order=("repeats", "seed", "noise"))
         g = self.grid_controls
         self.start, self.stop, self.points, self.spacing, self.zero = g.start, g.stop, g.points, g.spacing, g.zero
         self.repeats, self.seed, self.main_noise = g.repeats, g.seed, g.noise
@@ -155,7 +157,8 @@ class ComparePanel(QWidget):
         tl.addWidget(self.difference_plot, 5)
         self.tolerance_table = ToleranceTable()
         self.table = self.tolerance_table.table
-        tl.addWidget(self.tolerance_table, 4)
+        self.table_note = self.tolerance_table.note
+        tl.addWidget(self.tolerance_table, 5)
 
         self.text_view = CompareTextView(self.runner)
         self.text_view.error.connect(self.error)
@@ -171,7 +174,7 @@ class ComparePanel(QWidget):
         split.addWidget(self.text_view)
         split.setStretchFactor(0, 5)
         split.setStretchFactor(1, 4)
-        split.setSizes([420, 340])
+        split.setSizes([470, 290])
         outer.addWidget(split, 1)
         self.plot_pair.add_selected_lines()
 
@@ -335,6 +338,11 @@ class ComparePanel(QWidget):
         )
 
     # ---- the side-by-side text -----------------------------------------------------------
+
+    @property
+    def table_rows(self) -> list[tuple[str, str, float] | None]:
+        """(noise, kind, level) of each tolerance table row, None for the other rows."""
+        return self.tolerance_table.rows
 
     @property
     def view(self) -> SideBySide | None:

@@ -13,13 +13,14 @@ from PySide6.QtCore import Qt
 from app.export import add_export_menu
 from app.plotaxes import use_sigma_axis
 from app.style import PALETTE, codec_colour, faded, legend, pen, plot_widget
-from core.analyses.compare import Comparison
+from core.analyses.compare import ALPHA, SIGNIFICANT, Comparison
+from core.engine.noise import sigma_unit
+from core.engine.sweep import DEFAULT_NOISE
+from core.engine.tolerance import TOLERANCE_LEVELS
 
-LEVELS = (0.999, 0.99, 0.9)
 
-
-def sigma_unit(comparison: Comparison | None) -> str:
-    return "relative σ" if comparison is None or comparison.main_noise == "data-scale" else "absolute σ"
+def comparison_sigma_unit(comparison: Comparison | None) -> str:
+    return sigma_unit(comparison.main_noise if comparison is not None else DEFAULT_NOISE)
 
 
 class ComparePlots:
@@ -74,9 +75,9 @@ class ComparePlots:
         log = self.log_x and any(s > 0 for s in main[0].sigmas)
         for item in (acc_item, diff_item):
             item.setLogMode(x=log)
-            item.setLabel("bottom", f"{sigma_unit(c)} ({c.main_noise} noise)", color=p.ink_soft, **{"font-size": "8pt"})
+            item.setLabel("bottom", f"{comparison_sigma_unit(c)} ({c.main_noise} noise)", color=p.ink_soft, **{"font-size": "8pt"})
         legend(acc_item, offset=(10, -10))
-        for level in LEVELS:
+        for level in TOLERANCE_LEVELS:
             acc_item.addItem(pg.InfiniteLine(pos=level, angle=0, movable=False, pen=pen(p.ink_faint, 1, Qt.PenStyle.DotLine)),
                              ignoreBounds=True)
         for i, r in enumerate(main):
@@ -106,7 +107,7 @@ class ComparePlots:
             keep = sigmas > 0 if log else np.ones(len(sigmas), dtype=bool)
             x = sigmas[keep]
             diff = np.array([row.difference * 100 for row in pair.rows])[keep]
-            significant = np.array(pair.significant(0.05))[keep]
+            significant = np.array(pair.significant(ALPHA))[keep]
             diff_item.addItem(pg.PlotDataItem(x, diff, pen=pen(colour, 2), name=f"{pair.name_b} − {pair.name_a}"))
             if (~significant).any():
                 diff_item.addItem(pg.PlotDataItem(x[~significant], diff[~significant], pen=None, symbol="o", symbolSize=6,
@@ -116,10 +117,10 @@ class ComparePlots:
                                                   symbolBrush=p.ink, symbolPen=pen(p.surface, 1)))
         unit = c.paired[0].unit if c.paired else "token"
         diff_item.setLabel("left", f"B − A, percentage points (per {unit})", color=p.ink_soft, **{"font-size": "8pt"})
-        any_significant = any(any(pair.significant(0.05)) for pair in c.paired)
+        any_significant = any(any(pair.significant(ALPHA)) for pair in c.paired)
         diff_item.setTitle(
             f"<span style='color:{p.ink}; font-size:9pt; font-weight:600'>Paired difference B − A</span>"
-            f"<span style='color:{p.ink_soft}; font-size:8pt'>&nbsp;&nbsp;&nbsp;◆ McNemar p &lt; 0.05"
+            f"<span style='color:{p.ink_soft}; font-size:8pt'>&nbsp;&nbsp;&nbsp;◆ McNemar {SIGNIFICANT.replace('<', '&lt;')}"
             f"{'' if any_significant else ' (none on this grid)'}&nbsp;&nbsp;○ not significant</span>", justify="left")
         acc_item.enableAutoRange(x=True)
         diff_item.enableAutoRange(y=True)

@@ -13,7 +13,7 @@ from app.controls import caption
 from app.style import PALETTE, codec_colour, fmt_percent
 from app.tokentext import TokenText, char_format
 from app.workers import LatestTask, Runner, Task
-from core.analyses.compare import Comparison
+from core.analyses.compare import ALPHA, SIGNIFICANT, Comparison
 from core.analyses.compare_view import BOTH, ONLY_A, ONLY_B, SideBySide, comparison_side_by_side, first_sigma_to_show
 
 WASH = {ONLY_A: "#d9e6f6", ONLY_B: "#f8e6bd", BOTH: "#ecebe6"}
@@ -172,7 +172,7 @@ class CompareTextView(QFrame):
             f"&nbsp;&nbsp;<span style='background:{WASH[ONLY_B]}'>&nbsp;only B right&nbsp;</span>"
             f" <span style='color:{PALETTE.ink_soft}'>{row.b_only:,} {units}</span>")
         self.legend_both.setText(f"&nbsp;&nbsp;<span style='color:{PALETTE.ink_faint}'>faint: both wrong</span>")
-        stars = "significant, p < 0.05" if row.pvalue < 0.05 else "not significant"
+        stars = f"significant, {SIGNIFICANT}" if row.pvalue < ALPHA else "not significant"
         note = (f"paired per {pair.unit}: accuracy A {fmt_percent(row.accuracy_a, 3)}, B {fmt_percent(row.accuracy_b, 3)}; "
                 f"McNemar ({row.method}) p = {row.pvalue:.3g}, {stars}")
         if pair.unit == "character":

@@ -15,6 +15,10 @@ from app.style import PALETTE, faded, fmt_sigma, log_ticks, pen, plot_widget
 import core
 from core.outputs.report import provenance_caption
 from core.engine.health import ACTIVE_THRESHOLD, geometry_check
+from core.engine.tolerance import TOLERANCE_LEVELS, level_percent
+
+TOLERANCE_LEVEL = TOLERANCE_LEVELS[1]  # the 99 % level: the noise drawn against the nearest-neighbour distances
+TOLERANCE_NAME = f"{level_percent(TOLERANCE_LEVEL)} tolerance"
 
 
 class LatentPanel(QWidget):
@@ -39,7 +43,7 @@ class LatentPanel(QWidget):
         row.addWidget(box)
         box, self.nn_value, self.nn_note = figure_box("nearest-neighbour half-distance, median", 24)
         row.addWidget(box)
-        box, self.noise_value, self.noise_note = figure_box("noise norm at the 99 % tolerance", 24)
+        box, self.noise_value, self.noise_note = figure_box(f"noise norm at the {TOLERANCE_NAME}", 24)
         row.addWidget(box)
         row.addStretch(1)
         outer.addWidget(figures)
@@ -145,7 +149,7 @@ class LatentPanel(QWidget):
         hist, edges = np.histogram(half, bins=60)
         nn.addItem(pg.PlotDataItem(edges, hist, stepMode="center", fillLevel=0, brush=faded(p.ink, 60), pen=pen(p.ink, 1.2)))
         sweep = entry.sweep
-        tol = sweep.tolerance(0.99) if sweep is not None else None
+        tol = sweep.tolerance(TOLERANCE_LEVEL) if sweep is not None else None
         check = geometry_check(health, tol.sigma, sweep.settings.noise, entry.encoded) if (
             tol is not None and tol.sigma is not None and entry.encoded is not None) else None
         if check is not None:
@@ -154,7 +158,7 @@ class LatentPanel(QWidget):
             self.noise_value.setText(("≥ " if lower else "") + f"{norm:.4g}")
             self.noise_note.setText(f"σ {fmt_sigma(tol.sigma)}, {sweep.settings.noise} noise")
             nn.addItem(pg.InfiniteLine(pos=norm, angle=90, pen=pen(p.accent, 2),
-                                       label="noise norm at the 99 % tolerance", labelOpts={"position": 0.92, "color": p.accent,
+                                       label=f"noise norm at the {TOLERANCE_NAME}", labelOpts={"position": 0.92, "color": p.accent,
                                                                                             "anchors": [(1, 0), (1, 0)]}))
             nn.setXRange(min(float(half.min()), norm) * 0.95, max(float(half.max()), norm) * 1.08)
             if check.limit == "geometry":
@@ -164,13 +168,13 @@ class LatentPanel(QWidget):
                 why = ("Most chunks keep their perturbation inside their own half-distance at that σ yet tokens still break, "
                        "so the <b>decoder</b> is the limit, not how far apart the chunks sit.")
             self.verdict.setText(
-                f"At the 99 % tolerance the noise has length {norm:.4g}; {check.closer * 100:.0f} % of distinct chunks have a nearest "
+                f"At the {TOLERANCE_NAME} the noise has length {norm:.4g}; {check.closer * 100:.0f} % of distinct chunks have a nearest "
                 f"neighbour closer than twice that. {why}"
             )
         else:
             self.noise_value.setText("—")
             self.noise_note.setText("run a sweep to draw it")
-            self.verdict.setText("Run a sweep to draw the measured 99 % tolerance onto the distance histogram and see "
+            self.verdict.setText(f"Run a sweep to draw the measured {TOLERANCE_NAME} onto the distance histogram and see "
                                  "whether the latent geometry or the decoder is the limit.")
         self.plotted.emit()
 

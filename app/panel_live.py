@@ -23,6 +23,7 @@ from app.style import PALETTE, fmt_percent, show_piece
 from app.tokentext import TokenText, wrong_decoded_format, wrong_original_format
 from app.workers import Task
 from core.engine.noise import NOISE_MODELS
+from core.engine.sweep import DEFAULT_NOISE
 from core.analyses.live import LivePerturbation
 from core.engine.text import Chunks
 from core.codecs.tokenizer import token_display
@@ -92,10 +93,9 @@ class LivePanel(QWidget):
 
         self.noise = QComboBox()
         self.noise.addItems(list(NOISE_MODELS))
-        self.noise.setCurrentText("data-scale")
-        self.noise.setToolTip(
-            "isotropic: mean + σ·ε\nposterior: mean + σ·std⊙ε (variational codecs)\ndata-scale: mean + σ·r⊙ε, r = RMS of each latent dimension"
-        )
+        self.noise.setCurrentText(DEFAULT_NOISE)
+        self.noise.setToolTip("\n".join(f"{m.name}: {m.description}" + (" (variational codecs)" if m.needs_variational else "")
+                                        for m in NOISE_MODELS.values()))
         self.noise.currentTextChanged.connect(self._noise_changed)
         self.seed = QSpinBox()
         self.seed.setButtonSymbols(QAbstractSpinBox.ButtonSymbols.NoButtons)
@@ -185,7 +185,7 @@ class LivePanel(QWidget):
 
     def restore(self, values: dict) -> None:
         try:
-            self.noise.setCurrentText(str(values.get("noise", "data-scale")))
+            self.noise.setCurrentText(str(values.get("noise", DEFAULT_NOISE)))
             self.seed.setValue(int(values.get("seed", 0)))
             self.set_sigma(float(values.get("sigma", 0.2)))
         except (TypeError, ValueError):
@@ -201,16 +201,14 @@ class LivePanel(QWidget):
         entry = self.workbench.entry()
         noise = self.noise_model()
         value = self.sigma()
-        if noise == "isotropic" and entry is not None and entry.encoded is not None:
+        if NOISE_MODELS[noise].in_latent_units and entry is not None and entry.encoded is not None:
             rms = entry.encoded.latent_rms
             top = float(f"{RELATIVE_MAX * rms:.2g}") or RELATIVE_MAX
             self.slider.setMaximum(max(top, 1e-3))
-            self.scale_note.setText(f"absolute σ; this codec's latent RMS is {rms:.4g}")
+            self.scale_note.setText(f"{NOISE_MODELS[noise].unit}; this codec's latent RMS is {rms:.4g}")
         else:
             self.slider.setMaximum(RELATIVE_MAX)
-            self.scale_note.setText(
-                "σ relative to each latent dimension's RMS" if noise == "data-scale" else "σ in units of the posterior std"
-            )
+            self.scale_note.setText(NOISE_MODELS[noise].axis_label if noise in NOISE_MODELS else "")
         if value > self.slider.maximum():
             self.slider.setValue(self.slider.maximum())
 
@@ -227,8 +225,8 @@ class LivePanel(QWidget):
             return
         if self.window_pending:
             return  # launched again when the on-screen part of the running request arrives
-        if self.noise_model() == "posterior" and not entry.codec.variational:
-            self.state_note.setText("posterior noise needs a variational codec")
+        if NOISE_MODELS[self.noise_model()].needs_variational and not entry.codec.variational:
+            self.state_note.setText(f"{self.noise_model()} noise needs a variational codec")
             self.dirty = False
             return
         if self.task is not None:
@@ -292,12 +290,14 @@ class LivePanel(QWidget):
         entry = self.workbench.entry()
         noise_model = self.noise.model()
         if isinstance(noise_model, QStandardItemModel):
-            item = noise_model.item(NOISE_MODELS.index("posterior"))
             variational = entry is not None and entry.codec is not None and entry.codec.variational
-            item.setEnabled(variational)
-            item.setToolTip("" if variational else "needs a variational codec; this one is plain")
-            if not variational and self.noise_model() == "posterior":
-                self.noise.setCurrentText("data-scale")
+            for i, model in enumerate(NOISE_MODELS.values()):
+                if model.needs_variational:
+                    item = noise_model.item(i)
+                    item.setEnabled(variational)
+                    item.setToolTip("" if variational else "needs a variational codec; this one is plain")
+            if not variational and NOISE_MODELS[self.noise_model()].needs_variational:
+                self.noise.setCurrentText(DEFAULT_NOISE)
         if entry is None or not entry.ready:
             self.original.set_content("", np.zeros((0, 2), dtype=np.int64))
             self.decoded.set_content("", np.zeros((0, 2), dtype=np.int64))

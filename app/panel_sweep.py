@@ -6,22 +6,38 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import (
-    QCheckBox, QGridLayout, QHBoxLayout, QLabel, QVBoxLayout, QWidget,
+    QCheckBox, QFrame, QGridLayout, QHBoxLayout, QLabel, QVBoxLayout, QWidget,
 )
 
 from app.controls import GridControls, caption, card, page_layout, run_controls
 from app.export import add_export_menu
 from app.state import Workbench
-from app.style import PALETTE, faded, fmt_percent, fmt_sigma, legend, log_ticks, pen, plot_widget, series_colours
+from app.style import (
+    LEVEL_PEN_STYLES, PALETTE, faded, fmt_percent, legend, log_ticks, pen, plot_widget, series_colours,
+)
 from core.errors import SettingsError
-from core.engine.noise import NOISE_MODELS
+from core.engine.noise import NOISE_MODELS, sigma_unit
 from core.outputs.report import provenance_caption
-from core.engine.sweep import SweepResult, SweepSettings
+from core.engine.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED, SweepResult, SweepSettings
+from core.engine.tolerance import (
+    ABSOLUTE, LOSS, LOSS_LEVELS, NO_ZERO, TOLERANCE_LEVELS, UNRESOLVABLE, Tolerance, level_name, level_percent, resolution_note, tolerance_text,
+)
 from core.analyses.views import error_rate_floor
 
-DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 24, "spacing": "log", "zero": True, "repeats": 2,
-            "noise": "data-scale", "seed": 0}
-LEVEL_NAMES = {0.999: "99.9 %", 0.99: "99 %", 0.9: "90 %"}
+DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 24, "spacing": "log", "zero": True, "repeats": DEFAULT_REPEATS,
+            "noise": DEFAULT_NOISE, "seed": DEFAULT_SEED}
+
+
+def headline_text(tol: Tolerance) -> str:
+    """A tolerance in the sweep's headline: "σ 0.204", "σ > 2", "fails at 0", "too few tokens"."""
+    return tolerance_text(tol, digits=3, prefix="σ ")
+
+
+def tolerance_tip(tol: Tolerance, accuracy_at_zero: float) -> str:
+    if tol.kind == LOSS:
+        return (f"the largest σ before token accuracy first falls more than {level_percent(tol.level, LOSS).replace('pt', 'points')} "
+                f"below its σ = 0 value ({fmt_percent(accuracy_at_zero, 3)}), interpolated on the grid")
+    return f"the largest σ before token accuracy first drops below {level_percent(tol.level)}, interpolated on the grid"
 
 
 class SweepPanel(QWidget):
@@ -71,30 +87,34 @@ class SweepPanel(QWidget):
         self.restore(DEFAULTS)
 
         summary = QHBoxLayout()
-        summary.setSpacing(18)
+        summary.setSpacing(14)
         self.status = QLabel("Run a sweep to see how accuracy falls with noise.")
         self.status.setObjectName("caption")
-        self.tolerance_labels: dict[float, tuple[QLabel, QLabel]] = {}
-        for level in (0.999, 0.99, 0.9):
-            box = QVBoxLayout()
-            box.setSpacing(0)
-            cap = caption(f"tolerance at {LEVEL_NAMES[level]}")
-            value = QLabel("—")
-            value.setObjectName("figure")
-            box.addWidget(cap)
-            box.addWidget(value)
-            summary.addLayout(box)
-            self.tolerance_labels[level] = (cap, value)
+        # the headline: accuracy at σ = 0, then the σ up to which accuracy stays ≥ each level, then the σ up to
+        # which it stays within each loss of its σ = 0 value
+        self.zero_caption, self.zero_value = self._figure(summary, "accuracy at σ = 0")
+        self.tolerance_labels: dict[float, tuple[QLabel, QLabel]] = {}  # accuracy ≥ level
+        self.loss_labels: dict[float, tuple[QLabel, QLabel]] = {}  # loss ≤ level
+        for kind, levels, labels in ((ABSOLUTE, TOLERANCE_LEVELS, self.tolerance_labels), (LOSS, LOSS_LEVELS, self.loss_labels)):
+            rule = QFrame()
+            rule.setFrameShape(QFrame.Shape.VLine)
+            rule.setObjectName("rule")
+            summary.addWidget(rule)
+            for level in levels:
+                labels[level] = self._figure(summary, f"σ at {level_name(level, kind)}")
+        # what was swept, beside the headline (wrapped, so the headline keeps its room); the hover readout
+        # gets a row of its own below
+        self.status.setWordWrap(True)
+        self.status.setMinimumWidth(260)
+        self.status.setAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignTop)
+        summary.addWidget(self.status, 1)
+        outer.addLayout(summary)
         self.readout = QLabel("")
         self.readout.setObjectName("caption")
         self.readout.setTextFormat(Qt.TextFormat.RichText)
         self.readout.setAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
-        right = QVBoxLayout()
-        right.addWidget(self.status, 0, Qt.AlignmentFlag.AlignRight)
-        right.addWidget(self.readout, 0, Qt.AlignmentFlag.AlignRight)
-        summary.addStretch(1)
-        summary.addLayout(right)
-        outer.addLayout(summary)
+        self.readout.setMinimumWidth(1)  # a long readout is cut at the right, never widens the window
+        outer.addWidget(self.readout)
 
         grid = QGridLayout()
         grid.setSpacing(10)
@@ -136,6 +156,27 @@ class SweepPanel(QWidget):
             plot.getPlotItem().addItem(line, ignoreBounds=True)
             self.live_lines.append(line)
         self._clear_plots()
+
+    @staticmethod
+    def _figure(row: QHBoxLayout, title: str) -> tuple[QLabel, QLabel]:
+        box = QVBoxLayout()
+        box.setSpacing(0)
+        cap = caption(title)
+        value = QLabel("—")
+        value.setObjectName("figure")
+        box.addWidget(cap)
+        box.addWidget(value)
+        row.addLayout(box)
+        return cap, value
+
+    @staticmethod
+    def _show_figure(value: QLabel, text: str, word: bool = False) -> None:
+        name = "figureWord" if word else "figure"
+        if value.objectName() != name:
+            value.setObjectName(name)
+            value.style().unpolish(value)
+            value.style().polish(value)
+        value.setText(text)
 
     # ---- settings ------------------------------------------------------------------------
 
@@ -193,11 +234,12 @@ class SweepPanel(QWidget):
         self._sync_buttons()
         model = self.noise.model()
         variational = entry is not None and entry.codec is not None and entry.codec.variational
-        item = model.item(NOISE_MODELS.index("posterior")) if hasattr(model, "item") else None
-        if item is not None:
-            item.setEnabled(variational)
-        if not variational and self.noise.currentText() == "posterior":
-            self.noise.setCurrentText("data-scale")
+        for i, name in enumerate(NOISE_MODELS):
+            item = model.item(i) if hasattr(model, "item") else None
+            if item is not None and NOISE_MODELS[name].needs_variational:
+                item.setEnabled(variational)
+        if not variational and NOISE_MODELS[self.noise.currentText()].needs_variational:
+            self.noise.setCurrentText(DEFAULT_NOISE)
 
     def _entry_updated(self, path: str) -> None:
         if path != self.workbench.current:
@@ -217,8 +259,9 @@ class SweepPanel(QWidget):
                     item.removeItem(child)
             if item.legend is not None:
                 item.legend.clear()
-        for _, value in self.tolerance_labels.values():
-            value.setText("—")
+        for _, value in [(self.zero_caption, self.zero_value), *self.tolerance_labels.values(), *self.loss_labels.values()]:
+            self._show_figure(value, "—")
+            value.setToolTip("")
 
     def _log_toggled(self, on: bool) -> None:
         self.log_x = on
@@ -278,9 +321,10 @@ class SweepPanel(QWidget):
         if zero.any():
             e.addItem(pg.PlotDataItem(x[zero], error[zero], pen=None, symbol="o", symbolSize=6, symbolBrush=p.surface,
                                       symbolPen=pen(p.ink, 1.2), name="no errors (drawn at ½ error)"))
-        for level, style in ((1e-3, Qt.PenStyle.SolidLine), (1e-2, Qt.PenStyle.DashLine), (1e-1, Qt.PenStyle.DotLine)):
+        for style, accuracy_level in zip(LEVEL_PEN_STYLES, TOLERANCE_LEVELS):
+            level = 1.0 - accuracy_level
             line = pg.InfiniteLine(pos=np.log10(level), angle=0, movable=False, pen=pen(p.ink_faint, 1, style),
-                                   label=f"{(1 - level) * 100:g} %", labelOpts={"position": 0.04, "color": p.ink_soft,
+                                   label=level_percent(accuracy_level), labelOpts={"position": 0.04, "color": p.ink_soft,
                                                                                "anchors": [(0, 1), (0, 1)]})
             e.addItem(line, ignoreBounds=True)
         e.setYRange(np.log10(floor * 0.5), 0.05, padding=0)
@@ -310,9 +354,8 @@ class SweepPanel(QWidget):
         for plot in self.plots:  # not x-linked: pyqtgraph aligns linked views by screen position
             plot.getPlotItem().enableAutoRange(x=True)
         s = result.settings
-        unit = "relative σ" if s.noise == "data-scale" else ("σ × posterior std" if s.noise == "posterior" else "absolute σ")
         self.status.setText(
-            f"{result.codec_name} · {s.noise} noise ({unit}) · {len(s.sigmas)} σ × {s.repeats} repeats · seed {s.seed} · "
+            f"{result.codec_name} · {s.noise} noise ({sigma_unit(s.noise)}) · {len(s.sigmas)} σ × {s.repeats} repeats · seed {s.seed}\n"
             f"latent RMS {result.latent_rms:.4g} · {result.decoded_chunks:,} chunks decoded in {result.elapsed_s:.1f} s"
         )
         self.readout.setText("hover a plot to read values · click to open that σ in the live view")
@@ -320,19 +363,28 @@ class SweepPanel(QWidget):
 
     def _mark_tolerances(self, result: SweepResult) -> None:
         p = PALETTE
-        styles = {0.999: Qt.PenStyle.SolidLine, 0.99: Qt.PenStyle.DashLine, 0.9: Qt.PenStyle.DotLine}
-        for tol in result.tolerances:
-            cap, value = self.tolerance_labels.get(tol.level, (None, None))
-            if value is not None:
-                value.setText("fails at 0" if tol.status == "below_at_zero" else
-                              (f"> {fmt_sigma(tol.sigma)}" if tol.status == "above_grid" else f"σ {fmt_sigma(tol.sigma)}"))
-                cap.setToolTip("the largest σ before token accuracy first drops below this level, interpolated on the grid")
-            if tol.status != "ok" or tol.sigma is None or (self.log_x and tol.sigma <= 0):
+        acc0 = result.accuracy_at_zero
+        self.zero_value.setText(fmt_percent(acc0, 3))
+        self.zero_caption.setToolTip("token accuracy with no noise: the loss tolerances are measured from it")
+        note = resolution_note(result.chunks.num_tokens, result.tolerances + result.loss_tolerances)
+        for kind, labels, tolerances in ((ABSOLUTE, self.tolerance_labels, result.tolerances),
+                                         (LOSS, self.loss_labels, result.loss_tolerances)):
+            for tol in tolerances:
+                cap, value = labels.get(tol.level, (None, None))
+                if value is None:
+                    continue
+                # a status that is words, not a figure, is set smaller, so six of them fit
+                self._show_figure(value, headline_text(tol), word=tol.status in (UNRESOLVABLE, NO_ZERO))
+                cap.setToolTip(tolerance_tip(tol, acc0))
+                value.setToolTip(note or "")
+        for style, level in zip(LEVEL_PEN_STYLES, TOLERANCE_LEVELS):
+            tol = result.tolerance(level)
+            if not tol.found or (self.log_x and tol.sigma <= 0):
                 continue
             xpos = np.log10(tol.sigma) if self.log_x else tol.sigma
             for plot in (self.accuracy_plot, self.error_plot):
-                line = pg.InfiniteLine(pos=xpos, angle=90, movable=False, pen=pen(p.accent, 1.2, styles[tol.level]),
-                                       label=LEVEL_NAMES[tol.level] if plot is self.accuracy_plot else None,
+                line = pg.InfiniteLine(pos=xpos, angle=90, movable=False, pen=pen(p.accent, 1.2, style),
+                                       label=level_percent(level) if plot is self.accuracy_plot else None,
                                        labelOpts={"position": 0.1, "color": p.accent, "rotateAxis": (1, 0),
                                                   "anchors": [(0, 0), (0, 0)]})
                 plot.getPlotItem().addItem(line, ignoreBounds=True)

@@ -19,31 +19,23 @@ from PySide6.QtWidgets import (
 import core
 from app.controls import GridControls, caption, card, page_layout, run_controls
 from app.export import add_export_menu
-from app.style import PALETTE, fmt_percent, legend, pen, plot_widget
+from app.style import LEVEL_PEN_STYLES, LEVEL_SYMBOLS, PALETTE, fmt_percent, legend, pen, plot_widget
 from app.workers import LatestTask, Runner, Task
 from core.errors import ChunkscopeError
-from core.engine.sweep import SweepSettings
+from core.engine.noise import sigma_unit
+from core.engine.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED, SweepSettings
 from core.engine.text import demo_text
+from core.engine.tolerance import (
+    ABSOLUTE, BELOW_AT_ZERO, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, UNRESOLVABLE, level_name, tolerance_text,
+)
 from core.analyses.trend import TrendPoint, checkpoints_in, sort_points, trend
 
-DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 12, "spacing": "log", "zero": True, "repeats": 2,
-            "noise": "data-scale", "seed": 0}
-LEVELS = (0.999, 0.99, 0.9)
-LEVEL_NAMES = {0.999: "99.9 %", 0.99: "99 %", 0.9: "90 %"}
-LEVEL_STYLE = {0.999: (Qt.PenStyle.SolidLine, "o"), 0.99: (Qt.PenStyle.DashLine, "s"), 0.9: (Qt.PenStyle.DotLine, "t")}
-COLUMNS = ("checkpoint", "step", "step from", "accuracy at σ = 0", "99.9 %", "99 %", "90 %", "latent RMS", "problem")
-
-
-
-
-def tolerance_text(t: dict | None) -> str:
-    if not t:
-        return "—"
-    if t.get("status") == "below_at_zero":
-        return "fails at 0"
-    if t.get("sigma") is None:
-        return "—"
-    return f"> {t['sigma']:.4g}" if t.get("status") == "above_grid" else f"{t['sigma']:.4g}"
+DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 12, "spacing": "log", "zero": True, "repeats": DEFAULT_REPEATS,
+            "noise": DEFAULT_NOISE, "seed": DEFAULT_SEED}
+# the tolerance columns and series: accuracy ≥ each level, then loss ≤ each level
+KIND_LEVELS = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
+COLUMNS = ("checkpoint", "step", "step from", "accuracy at σ = 0", *[level_name(lv, k) for k, lv in KIND_LEVELS],
+           "latent RMS", "problem")
 
 
 class _Cell(QTableWidgetItem):
@@ -145,7 +137,9 @@ class TrendPanel(QWidget):
         pl.addWidget(self.accuracy_plot, 2)
 
         self.table = QTableWidget(0, len(COLUMNS))
-        self.table.setHorizontalHeaderLabels(COLUMNS)
+        # two-line headers keep the six tolerance columns narrow: "accuracy ≥" / "99 %", "loss ≤" / "1 pt"
+        self.table.setHorizontalHeaderLabels([c.replace("≥ ", "≥\n").replace("≤ ", "≤\n").replace(" at σ", "\nat σ")
+                                              for c in COLUMNS])
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
         self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
@@ -297,8 +291,11 @@ class TrendPanel(QWidget):
             parts.append(f"{len(bad)} could not be used (see the problem column)")
         if stepless:
             parts.append(f"{len(stepless)} without a training step are in the table only")
-        if any(t.get("status") == "below_at_zero" for pt in points for t in pt.tolerances.values()):
+        every = [t for pt in points for t in pt.tolerances + pt.loss_tolerances]
+        if any(t.status == BELOW_AT_ZERO for t in every):
             parts.append("a tolerance that already fails at σ = 0 is not drawn")
+        if any(t.status == UNRESOLVABLE for t in every):
+            parts.append("“too few tokens”: the text is too short to resolve that level")
         self.status.setText(" · ".join(parts))
 
     def _fill_table(self) -> None:
@@ -307,13 +304,13 @@ class TrendPanel(QWidget):
         points = sort_points(list(self.points))
         t.setRowCount(len(points))
         for i, p in enumerate(points):
-            tol = [p.tolerances.get(level) for level in LEVELS]
+            tol = [p.tolerance(level, kind) for kind, level in KIND_LEVELS]
             cells = [
                 _Cell(p.name, right=False),
                 _Cell("—" if p.step is None else f"{p.step:,}", p.step),
                 _Cell(p.step_source, right=False),
                 _Cell("—" if p.accuracy_at_zero is None else fmt_percent(p.accuracy_at_zero, 3), p.accuracy_at_zero),
-                *[_Cell(tolerance_text(x), None if not x else x.get("sigma")) for x in tol],
+                *[_Cell(tolerance_text(x), None if x is None else x.sigma) for x in tol],
                 _Cell("—" if p.latent_rms is None else f"{p.latent_rms:.4g}", p.latent_rms),
                 _Cell(p.error or "", right=False),
             ]
@@ -338,26 +335,27 @@ class TrendPanel(QWidget):
         if not good:
             return
         noise = self.settings_used.noise if self.settings_used is not None else ""
-        unit = {"data-scale": "relative σ", "isotropic": "absolute σ", "posterior": "σ in posterior std"}.get(noise, "σ")
-        tol_item.setLabel("left", unit, color=p.ink_soft, **{"font-size": "8pt"})
+        tol_item.setLabel("left", sigma_unit(noise), color=p.ink_soft, **{"font-size": "8pt"})
         legend(tol_item, offset=(10, 10))
         any_lower_bound = False
         highest = 0.0
-        for level in LEVELS:
-            style, symbol = LEVEL_STYLE[level]
-            rows = [(pt.step, pt.tolerances[level]) for pt in good if pt.tolerances.get(level, {}).get("sigma") is not None]
+        for kind, level in KIND_LEVELS:
+            index = (TOLERANCE_LEVELS if kind == ABSOLUTE else LOSS_LEVELS).index(level)
+            style, symbol = LEVEL_PEN_STYLES[index], LEVEL_SYMBOLS[index]
+            colour = p.accent if kind == ABSOLUTE else p.ink_soft  # accuracy levels in the accent, losses in ink
+            rows = [(pt.step, t) for pt in good for t in [pt.tolerance(level, kind)] if t is not None and t.sigma is not None]
             if not rows:
                 continue
             x = np.array([r[0] for r in rows], dtype=np.float64)
-            y = np.array([r[1]["sigma"] for r in rows], dtype=np.float64)
-            above = np.array([r[1].get("status") == "above_grid" for r in rows])
+            y = np.array([r[1].sigma for r in rows], dtype=np.float64)
+            above = np.array([r[1].status == "above_grid" for r in rows])
             any_lower_bound |= bool(above.any())
             highest = max(highest, float(y.max()))
-            tol_item.addItem(pg.PlotDataItem(x, y, pen=pen(p.accent, 1.8, style), symbol=symbol, symbolSize=7,
-                                             symbolBrush=p.accent, symbolPen=None, name=f"{LEVEL_NAMES[level]} tolerance"))
+            tol_item.addItem(pg.PlotDataItem(x, y, pen=pen(colour, 1.8, style), symbol=symbol, symbolSize=7,
+                                             symbolBrush=colour, symbolPen=None, name=f"σ at {level_name(level, kind)}"))
             if above.any():  # a lower bound: the accuracy never dropped on the grid
                 tol_item.addItem(pg.PlotDataItem(x[above], y[above], pen=None, symbol=symbol, symbolSize=9,
-                                                 symbolBrush=p.surface, symbolPen=pen(p.accent, 1.5)))
+                                                 symbolBrush=p.surface, symbolPen=pen(colour, 1.5)))
         if any_lower_bound:
             tol_item.legend.addItem(pg.PlotDataItem(pen=None, symbol="o", symbolSize=9, symbolBrush=p.surface,
                                                     symbolPen=pen(p.accent, 1.5)), "never dropped on the grid (lower bound)")
@@ -369,7 +367,7 @@ class TrendPanel(QWidget):
         span = max(steps) - min(steps)
         pad = span * 0.04 if span > 0 else 1.0
         tol_item.setXRange(min(steps) - pad, max(steps) + pad, padding=0)  # the accuracy plot follows (x-linked)
-        tol_item.setYRange(0, highest * 1.12 if highest > 0 else 1.0, padding=0)  # σ starts at 0
+        tol_item.setYRange(0, highest * 1.4 if highest > 0 else 1.0, padding=0)  # σ starts at 0; room for the legend
         acc_item.enableAutoRange(y=True)
 
     # ---- for export and reports ----------------------------------------------------------

@@ -18,7 +18,7 @@ from core.analyses.compare import Comparison, read_comparison
 from core.errors import ChunkscopeError
 from core.outputs.report import build_report
 from core.outputs.files import write_text_atomic
-from core.engine.sweep import SweepResult, read_sweep
+from core.engine.sweep import DEFAULT_NOISE, SweepResult, read_sweep
 from core.analyses.trend import TrendPoint, read_trend
 from core.outputs.workspace import WORKSPACE_SUFFIX, Workspace, load_workspace, save_workspace
 
@@ -29,7 +29,7 @@ WORKSPACE_FILTER = f"chunkscope workspace (*{WORKSPACE_SUFFIX})"
 # ---- without dialogs (tests and scripts call these) ---------------------------------------
 
 def save_report(path: str | Path, sweeps: Sequence[SweepResult] = (), comparison: Comparison | None = None,
-                trend_points: Sequence[TrendPoint] = (), trend_noise: str = "data-scale",
+                trend_points: Sequence[TrendPoint] = (), trend_noise: str = DEFAULT_NOISE,
                 title: str = "chunkscope report", force: bool = False) -> Path:
     """Write a self-contained HTML report of what is loaded and computed, atomically."""
     try:

@@ -27,6 +27,9 @@ class Palette:
 
 
 PALETTE = Palette()
+# one line style and one symbol per tolerance level, finest level first (core.engine.tolerance's order)
+LEVEL_PEN_STYLES = (Qt.PenStyle.SolidLine, Qt.PenStyle.DashLine, Qt.PenStyle.DotLine)
+LEVEL_SYMBOLS = ("o", "s", "t")
 SANS = ["Inter", "IBM Plex Sans", "Source Sans 3", "Segoe UI", "Helvetica Neue", "DejaVu Sans"]
 MONO = ["JetBrains Mono", "IBM Plex Mono", "Cascadia Mono", "Menlo", "Consolas", "DejaVu Sans Mono"]
 COLORMAP = "cividis"  # perceptually uniform and readable with colour-vision deficiency
@@ -58,6 +61,7 @@ QLabel#caption {{ color: {p.ink_soft}; font-size: 8.5pt; }}
 QLabel#faint {{ color: {p.ink_faint}; font-size: 8.5pt; }}
 QLabel#figure {{ font-size: 17pt; font-weight: 600; color: {p.ink}; }}
 QLabel#figureAccent {{ font-size: 17pt; font-weight: 600; color: {p.accent}; }}
+QLabel#figureWord {{ font-size: 11pt; font-weight: 600; color: {p.ink_soft}; }}
 QLabel#section {{ color: {p.ink_soft}; font-size: 8pt; font-weight: 600; letter-spacing: 1px; }}
 QToolTip {{ background: {p.surface}; color: {p.ink}; border: 1px solid {p.line}; padding: 6px; }}
 QPushButton {{ background: {p.surface}; border: 1px solid {p.line}; border-radius: 4px; padding: 4px 12px; }}

@@ -64,16 +64,43 @@ def _load_text_arg(path: str | None) -> tuple[str, str]:
     return load_text(path), str(path)
 
 
+ADAPTER_HELP = (
+    "a Python adapter that opens the checkpoints: FILE.py (its load(path)), FILE.py:FUNC, or the name of an "
+    "installed chunkscope.adapters entry point; it opens every checkpoint that is not a chunkscope safetensors "
+    "file or ONNX codec folder (those open as always). Runs that file's code."
+)
+
+
+def announce_adapter(adapter: str | None, paths, stream=None) -> None:
+    """Before any adapter code runs: one line naming the file whose code runs, and its sha256."""
+    if not adapter:
+        return
+    from core.codecs.adapter import adapter_identity
+    from core.codecs.open import uses_adapter
+
+    if not any(Path(p).exists() and uses_adapter(p) for p in paths):  # a missing checkpoint is refused before any code runs
+        return
+    what, sha = adapter_identity(adapter)
+    print(f"chunkscope: running the adapter code in {what}" + (f" (sha256 {sha})" if sha else ""), file=stream or sys.stderr)
+
+
+def open_checkpoints(paths, adapter: str | None = None) -> list:
+    from core.codecs.open import open_checkpoint
+
+    paths = list(paths)
+    announce_adapter(adapter, paths)
+    return [open_checkpoint(p, adapter) for p in paths]
+
+
 def _fmt(value) -> str:
     return "—" if value is None else f"{value:.4g}"
 
 
 def cmd_info(args: argparse.Namespace) -> int:
-    from core.codecs.checkpoint import load_codec
     from core.engine.health import latent_health
     from core.engine.text import chunk_text
 
-    codec = load_codec(args.checkpoint)
+    (codec,) = open_checkpoints([args.checkpoint], args.adapter)
     text, source = _load_text_arg(args.text)
     chunks = chunk_text(text, codec, source)
     health = latent_health(codec, chunks)
@@ -111,16 +138,47 @@ def _settings_from_args(args: argparse.Namespace):
 
 
 def print_tolerance_table(results, stream=None) -> None:
+    """Each sweep's accuracy at σ = 0, its accuracy-level and its loss tolerances, and the latent RMS."""
+    from core.engine.noise import sigma_unit
+    from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, level_percent, resolution_note, status_notes
+    from core.engine.tolerance import UNRESOLVABLE
+
     stream = stream or sys.stdout
     noise = results[0].settings.noise
-    unit = "relative σ" if noise == "data-scale" else "absolute σ"
-    header = f"{'checkpoint':<22} {'acc@σ=0':>9} {'99.9 %':>10} {'99 %':>10} {'90 %':>10} {'latent RMS':>11}"
-    print(f"tolerance ({noise} noise, {unit}; '>' = never dropped on the grid)", file=stream)
-    print(header, file=stream)
+    levels = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
+    rows = []
     for r in results:
-        acc0 = r.curves[0].token_accuracy if r.sigmas[0] == 0 else float("nan")
-        row = [t.label() for t in r.tolerances]
-        print(f"{r.codec_name[:22]:<22} {acc0 * 100:8.3f}% {row[0]:>10} {row[1]:>10} {row[2]:>10} {r.latent_rms:>11.4g}", file=stream)
+        acc0 = r.accuracy_at_zero
+        tols = [r.tolerance(level, kind) for kind, level in levels]
+        rows.append([r.codec_name, "—" if acc0 != acc0 else f"{acc0 * 100:.3f}%"] + [t.label() for t in tols]
+                    + [f"{r.latent_rms:.4g}"])
+    header = ["checkpoint", "acc@σ=0"] + [level_percent(level, kind) for kind, level in levels] + ["latent RMS"]
+    widths = [max([8] + [len(row[i]) for row in rows + [header]]) for i in range(len(header))]
+    widths[0] = min(max(len(row[0]) for row in rows + [header]), 22)
+    n_abs = len(TOLERANCE_LEVELS)
+    blocks = [(0, 2), (2, 2 + n_abs), (2 + n_abs, len(header) - 1), (len(header) - 1, len(header))]
+
+    def line(cells: list[str]) -> str:
+        parts = []
+        for i, (a, b) in enumerate(blocks):
+            parts.append(" ".join(f"{c[:w]:<{w}}" if i == 0 and j == a else f"{c:>{w}}"
+                                  for j, (c, w) in enumerate(zip(cells[a:b], widths[a:b]), start=a)))
+        return "   ".join(parts)
+
+    print(f"tolerance in {sigma_unit(noise)} ({noise} noise): the largest σ with token accuracy ≥ the level, "
+          "or with its loss from σ = 0 ≤ the points", file=stream)
+    spans = [sum(widths[a:b]) + b - a - 1 for a, b in blocks]
+    print((" " * (spans[0] + 3) + f"{'accuracy ≥':<{spans[1]}}   {'loss ≤'}").rstrip(), file=stream)
+    print(line(header), file=stream)
+    for row in rows:
+        print(line(row), file=stream)
+    notes = status_notes([t for r in results for t in r.tolerances + r.loss_tolerances], skip=[UNRESOLVABLE])  # said below
+    if notes:
+        print("; ".join(notes) + ".", file=stream)
+    for r in results:
+        note = resolution_note(r.chunks.num_tokens, r.tolerances + r.loss_tolerances)
+        if note:
+            print(f"{r.codec_name}: {note}", file=stream)
     if noise != "data-scale":
         print("absolute σ depends on each codec's latent scale: compare with the latent RMS, or sweep with --noise data-scale.", file=stream)
 
@@ -149,7 +207,6 @@ def _check_outputs(targets: list[Path], force: bool, recognise, folder: bool) ->
 
 
 def cmd_sweep(args: argparse.Namespace) -> int:
-    from core.codecs.checkpoint import load_codec
     from core.engine.sweep import SWEEP_FOLDER, run_sweep
     from core.engine.text import chunk_text
     from core.outputs.files import OutputRefusedError, Outputs
@@ -159,7 +216,7 @@ def cmd_sweep(args: argparse.Namespace) -> int:
     if out.exists() and not out.is_dir():
         raise OutputRefusedError(f"{out} is a file, and sweep results go into a folder; choose another --out.")
     text, source = _load_text_arg(args.text)
-    codecs = [load_codec(p) for p in args.checkpoints]
+    codecs = open_checkpoints(args.checkpoints, args.adapter)
     names = [c.name for c in codecs]
     if len(set(names)) != len(names):
         raise ChunkscopeError("two checkpoints share a file name, so their output folders would collide; rename one.")
@@ -183,26 +240,31 @@ def cmd_sweep(args: argparse.Namespace) -> int:
 
 
 def print_comparison(comparison, stream=None) -> None:
-    stream = stream or sys.stdout
-    print("tolerance: absolute σ (isotropic) | relative σ (data-scale)", file=stream)
-    print(f"{'checkpoint':<20} {'acc@σ=0':>9} {'RMS':>7} | {'99.9 %':>9} {'99 %':>9} {'90 %':>9} | {'99.9 %':>9} {'99 %':>9} {'90 %':>9}", file=stream)
-    for t in comparison.tolerances:
-        from core.engine.sweep import Tolerance
+    from core.analyses.compare import ALPHA, SIGNIFICANT
+    from core.engine.noise import sigma_unit
+    from core.engine.tolerance import ABSOLUTE, LOSS, levels_of, level_percent
 
-        iso = [Tolerance(**x).label() for x in t.absolute]
-        ds = [Tolerance(**x).label() for x in t.data_scale]
-        print(f"{t.name[:20]:<20} {t.accuracy_at_zero * 100:8.3f}% {t.latent_rms:7.3g} | "
-              + " ".join(f"{x:>9}" for x in iso) + " | " + " ".join(f"{x:>9}" for x in ds), file=stream)
+    stream = stream or sys.stdout
+    for kind, word in ((ABSOLUTE, "accuracy ≥"), (LOSS, "loss ≤")):
+        print(f"tolerance, {word} the level: " + " | ".join(f"{sigma_unit(n)} ({n})" for n in ("isotropic", "data-scale")), file=stream)
+        heads = [level_percent(level, kind) for level in levels_of(kind)]
+        print(f"{'checkpoint':<20} {'acc@σ=0':>9} {'RMS':>7} | " + " ".join(f"{h:>9}" for h in heads) + " | "
+              + " ".join(f"{h:>9}" for h in heads), file=stream)
+        for t in comparison.tolerances:
+            iso = [x.label() for x in (t.absolute if kind == ABSOLUTE else t.absolute_loss)]
+            ds = [x.label() for x in (t.data_scale if kind == ABSOLUTE else t.data_scale_loss)]
+            print(f"{t.name[:20]:<20} {t.accuracy_at_zero * 100:8.3f}% {t.latent_rms:7.3g} | "
+                  + " ".join(f"{x:>9}" for x in iso) + " | " + " ".join(f"{x:>9}" for x in ds), file=stream)
     if comparison.scale_warning:
         print(f"warning: {comparison.scale_warning}", file=stream)
     for p in comparison.paired:
-        real = [r for r in p.rows if r.pvalue < 0.05]
+        real = [r for r in p.rows if r.pvalue < ALPHA]
         what = f"{p.name_b} − {p.name_a} ({comparison.main_noise}, per {p.unit})"
         if not real:
-            print(f"{what}: the difference is not significant at p < 0.05 at any σ of the grid.", file=stream)
+            print(f"{what}: the difference is not significant at {SIGNIFICANT} at any σ of the grid.", file=stream)
             continue
         where = ", ".join(f"{r.sigma:.3g} ({100 * r.difference:+.2f} pts)" for r in real[:8])
-        print(f"{what}: significant at p < 0.05 at σ = {where}" + (" …" if len(real) > 8 else ""), file=stream)
+        print(f"{what}: significant at {SIGNIFICANT} at σ = {where}" + (" …" if len(real) > 8 else ""), file=stream)
 
 
 def _comparison_from_args(args, codecs, text, source, progress=None):
@@ -217,13 +279,12 @@ def _comparison_from_args(args, codecs, text, source, progress=None):
 
 def cmd_compare(args: argparse.Namespace) -> int:
     from core.analyses.compare import COMPARE_FOLDER
-    from core.codecs.checkpoint import load_codec
 
     _settings_from_args(args)
     out = Path(args.out)
     _check_outputs([out], args.force, COMPARE_FOLDER, folder=True)
     text, source = _load_text_arg(args.text)
-    codecs = [load_codec(p) for p in args.checkpoints]
+    codecs = open_checkpoints(args.checkpoints, args.adapter)
     if len({c.name for c in codecs}) != len(codecs):
         raise ChunkscopeError("two checkpoints share a file name; rename one so the results can be told apart.")
     progress = None if args.quiet else TerminalProgress("compare")
@@ -239,7 +300,7 @@ def cmd_trend(args: argparse.Namespace) -> int:
     from core.outputs.files import OutputExistsError
 
     settings = _settings_from_args(args)
-    checkpoints_in(args.folder)  # a missing or empty folder is said before the table starts
+    paths = checkpoints_in(args.folder, args.adapter)  # a missing or empty folder is said before the table starts
     out = Path(args.out) if args.out else None
     if out is not None:
         try:
@@ -247,18 +308,23 @@ def cmd_trend(args: argparse.Namespace) -> int:
         except OutputExistsError as exc:
             raise _already_exist([exc.path]) from None
     text, source = _load_text_arg(args.text)
+    from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, level_percent
+
+    announce_adapter(args.adapter, paths)
     points = []
-    print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} {'99.9 %':>9} {'99 %':>9} {'90 %':>9}")
-    for point in trend(args.folder, text, settings, text_source=source):
+    levels = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
+    print(f"{'':<48}{'accuracy ≥':<34}loss ≤")
+    print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[:3])
+          + "  " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[3:]))
+    for point in trend(args.folder, text, settings, text_source=source, adapter=args.adapter):
         points.append(point)
         if point.error:
             print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} failed: {point.error}")
             continue
-        from core.engine.sweep import Tolerance
-
-        tols = [Tolerance(level, **point.tolerances[level]).label() for level in (0.999, 0.99, 0.9)]
+        tols = [point.tolerance(level, kind) for kind, level in levels]
+        cells = [f"{'—' if t is None else t.label():>10}" for t in tols]
         print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} {point.accuracy_at_zero * 100:8.3f}% "
-              + " ".join(f"{x:>9}" for x in tols), flush=True)
+              + " ".join(cells[:3]) + "  " + " ".join(cells[3:]), flush=True)
     if out is not None:
         written = write_trend(out, points, force=args.force)
         print(f"wrote {' and '.join(str(p) for p in written)}", file=sys.stderr)
@@ -276,13 +342,12 @@ def is_report_file(path: Path) -> bool:
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from core.codecs.checkpoint import load_codec
     from core.analyses.compare import read_comparison
     from core.outputs.files import write_text_atomic
     from core.outputs.report import build_report
     from core.engine.sweep import read_sweep, run_sweep
     from core.engine.text import chunk_text
-    from core.analyses.trend import trend
+    from core.analyses.trend import checkpoints_in, trend
 
     out = Path(args.out)
     if not args.inputs and not args.trend:
@@ -291,8 +356,13 @@ def cmd_report(args: argparse.Namespace) -> int:
     _check_outputs([out], args.force, is_report_file, folder=False)
     sweeps, comparison, points = [], None, []
     paths = [Path(p) for p in args.inputs]
-    folders = [p for p in paths if p.is_dir()]
-    files = [p for p in paths if not p.is_dir()]
+    from core.codecs.onnx import is_onnx_codec
+
+    def is_result_folder(p: Path) -> bool:
+        return p.is_dir() and not is_onnx_codec(p) and ((p / "compare.json").exists() or (p / "sweep.json").exists() or not args.adapter)
+
+    folders = [p for p in paths if is_result_folder(p)]
+    files = [p for p in paths if not is_result_folder(p)]
     for folder in folders:
         if (folder / "compare.json").exists():
             comparison = read_comparison(folder)
@@ -301,14 +371,16 @@ def cmd_report(args: argparse.Namespace) -> int:
     if files or args.trend:
         text, source = _load_text_arg(args.text)
     if files:
-        codecs = [load_codec(p) for p in files]
+        codecs = open_checkpoints(files, args.adapter)
         if len(codecs) >= 2:
             comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"))
         else:
             chunks = chunk_text(text, codecs[0], source)
             sweeps.append(run_sweep(codecs[0], chunks, settings, text_source=source, progress=None if args.quiet else TerminalProgress(codecs[0].name[:16])))
     if args.trend:
-        points = list(trend(args.trend, text, settings, text_source=source))
+        if not files:
+            announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter))
+        points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter))
     html = build_report(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise, title=args.title)
     write_text_atomic(out, html, force=args.force, recognise=is_report_file)
     print(f"wrote {out} ({len(html) / 1024:.0f} KiB, self-contained)", file=sys.stderr)
@@ -335,6 +407,8 @@ def add_sweep_arguments(p: argparse.ArgumentParser, noise_choices=None) -> None:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    from core.analyses.compare import COMPARISON_NOISES
+
     parser = argparse.ArgumentParser(
         prog="chunkscope",
         description="Measure how much latent noise a chunk autoencoder can take. With no command, opens the workbench.",
@@ -346,12 +420,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("info", help="describe a checkpoint and its latent health", description="Architecture, sizes, parameter count, sha256, card and latent health of one checkpoint.")
     p.add_argument("checkpoint")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     p.add_argument("--text", help="UTF-8 text file for the latent health (default: the bundled demo text)")
     p.add_argument("--json", action="store_true", help="print JSON instead of text")
     p.set_defaults(func=cmd_info)
 
     p = sub.add_parser("sweep", help="sweep checkpoints over a sigma grid", description="Encode a text once per checkpoint, then perturb, decode and score it at every sigma; write DIR/<checkpoint>/sweep.json, curves.csv, tokens.csv.")
     p.add_argument("checkpoints", nargs="+", metavar="CKPT")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     add_sweep_arguments(p)
     p.add_argument("--out", default="results", help="output folder (default: results)")
     p.add_argument("--force", action="store_true", help="replace existing output folders")
@@ -365,7 +441,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("compare", help="compare checkpoints on one text, paired", description="Sweep two or more checkpoints on the same text with the same noise seed, under data-scale and isotropic noise; write tolerances side by side, the curves and McNemar tests per sigma.")
     p.add_argument("checkpoints", nargs="+", metavar="CKPT")
-    add_sweep_arguments(p, noise_choices=("data-scale", "isotropic"))
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
+    add_sweep_arguments(p, noise_choices=COMPARISON_NOISES)
     p.add_argument("--abs-sigmas", help="grid for the isotropic (absolute) sweep (default: the relative grid times the largest latent RMS)")
     p.add_argument("--out", default="comparison", help="output folder (default: comparison)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
@@ -373,6 +450,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("trend", help="tolerance through a training run (a folder of checkpoints)", description="Sweep every checkpoint in a folder and report accuracy at sigma 0 and the 99.9/99/90 % tolerances against training step (from each card, else from the file name).")
     p.add_argument("folder")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     add_sweep_arguments(p)
     p.add_argument("--out", help="write trend.csv and trend.json into this folder")
     p.add_argument("--force", action="store_true", help="replace existing output files")
@@ -380,7 +458,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("report", help="one self-contained HTML report", description="Write one self-contained HTML file (inline plots, no outside links) from checkpoints (swept or compared on the text), or from folders written by 'sweep' or 'compare'.")
     p.add_argument("inputs", nargs="*", metavar="INPUT", help="checkpoints, or folders written by 'sweep' / 'compare'")
-    add_sweep_arguments(p, noise_choices=("data-scale", "isotropic"))
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
+    add_sweep_arguments(p, noise_choices=COMPARISON_NOISES)
     p.add_argument("--trend", metavar="FOLDER", help="also sweep a folder of training checkpoints")
     p.add_argument("--title", default="chunkscope report")
     p.add_argument("--out", default="report.html", help="the HTML file to write (default: report.html)")

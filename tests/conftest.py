@@ -4,7 +4,11 @@ window on the shipped samples per GUI test module."""
 
 from __future__ import annotations
 
+import hashlib
 import os
+import sysconfig
+from functools import lru_cache
+from pathlib import Path
 
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 
@@ -72,6 +76,21 @@ class LookupCodec:
         slots = (z / self.scale).reshape(z.shape[0], self.chunk_size, self.per_token_dim)
         squared = slots.square().sum(-1, keepdim=True) - 2 * slots @ self.table.T + self.table.square().sum(-1)
         return -self.sharpness * squared
+
+
+def documented_held_out(relative_path: str) -> bool:
+    """core/training/corpus.py's docstring, followed by hand (not by calling is_held_out): a file is held
+    out when int(sha256(relative posix path), 16) % 10 == 0; the digest's bytes read big-endian are that integer."""
+    return int.from_bytes(hashlib.sha256(relative_path.encode("utf-8")).digest(), "big") % 10 == 0
+
+
+@lru_cache(maxsize=1)
+def stdlib_corpus_files() -> tuple[Path, tuple[Path, ...]]:
+    """This Python's standard library folder and the files the corpus reads from it (walked once per session)."""
+    from core.training.corpus import stdlib_files
+
+    root = Path(sysconfig.get_paths()["stdlib"])
+    return root, tuple(stdlib_files(root))
 
 
 @pytest.fixture()

@@ -77,8 +77,16 @@ def test_compare_panel_runs_and_its_table_holds_the_comparisons_numbers(compare_
         assert table.item(0, j).text() == row.sha256[:10]
         assert table.item(1, j).text() == f"{row.latent_rms:.4g}"
         assert table.item(2, j).text().startswith(f"{row.accuracy_at_zero * 100:.3f}")
-        assert [table.item(3 + i, j).text() for i in range(3)] == [tolerance_label(t) for t in row.absolute]
-        assert [table.item(6 + i, j).text() for i in range(3)] == [tolerance_label(t) for t in row.data_scale]
+        groups = {("isotropic", "absolute"): row.absolute, ("isotropic", "loss"): row.absolute_loss,
+                  ("data-scale", "absolute"): row.data_scale, ("data-scale", "loss"): row.data_scale_loss}
+        for noise_kind, tolerances in groups.items():
+            at = [i for i, key in enumerate(panel.table_rows) if key is not None and key[:2] == noise_kind]
+            assert [panel.table_rows[i][2] for i in at] == [t.level for t in tolerances]
+            assert [table.item(i, j).text() for i in at] == [tolerance_label(t) for t in tolerances]
+    labels = [table.verticalHeaderItem(i).text() for i in range(table.rowCount())]
+    tolerance_rows = ["accuracy ≥ 99.9 %", "accuracy ≥ 99 %", "accuracy ≥ 90 %", "loss ≤ 0.1 pt", "loss ≤ 1 pt", "loss ≤ 10 pt"]
+    # the two kinds carry different words, so they cannot be confused; each noise has its heading row
+    assert labels[3:] == ["absolute σ (isotropic)", *tolerance_rows, "relative σ (data-scale)", *tolerance_rows]
     assert panel.warning.isHidden()  # same latent scale: no warning
     # one band, one curve per checkpoint on the accuracy plot; the difference curve on the other
     curves = [i for i in panel.accuracy_plot.getPlotItem().items if isinstance(i, pg.PlotDataItem) and i.name()]

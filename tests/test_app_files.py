@@ -13,6 +13,7 @@ import pytest
 
 from conftest import FIXTURE_TEXT, LookupCodec
 from core.analyses.trend import TrendPoint, read_trend, write_trend
+from core.engine.tolerance import LOSS, Tolerance
 from core.errors import ChunkscopeError
 
 WAIT = 60_000
@@ -99,14 +100,22 @@ def _comparison():
 def test_read_trend_round_trips_what_write_trend_wrote(tmp_path):
     points = [
         TrendPoint("/r/a.safetensors", "run 3, seed \"1\"", 200, "card", sha256="ab" * 32, accuracy_at_zero=0.99,
-                   tolerances={0.999: {"sigma": None, "status": "below_at_zero"}, 0.99: {"sigma": 0.25, "status": "ok"},
-                               0.9: {"sigma": 2.0, "status": "above_grid"}}, latent_rms=1.5),
+                   tolerances=[Tolerance(0.999, None, "below_at_zero"), Tolerance(0.99, 0.25, "ok"),
+                               Tolerance(0.9, 2.0, "above_grid")], latent_rms=1.5,
+                   loss_tolerances=[Tolerance(0.01, 0.1, "ok", LOSS)]),
         TrendPoint("/r/b.safetensors", "b", None, "none", error="b.safetensors is truncated."),
     ]
     write_trend(tmp_path, points)
     again = read_trend(tmp_path)
     assert [p.to_dict() for p in again] == [p.to_dict() for p in points]
-    assert read_trend(tmp_path / "trend.json")[0].tolerances[0.99] == {"sigma": 0.25, "status": "ok"}
+    assert read_trend(tmp_path / "trend.json")[0].tolerance(0.99) == Tolerance(0.99, 0.25, "ok")
+    assert read_trend(tmp_path / "trend.json")[0].tolerance(0.01, LOSS) == Tolerance(0.01, 0.1, "ok", LOSS)
+
+
+def test_read_trend_still_reads_an_older_file_keyed_by_level(tmp_path):
+    (tmp_path / "trend.json").write_text('[{"name": "a", "tolerances": {"0.99": {"sigma": 0.25, "status": "ok"}}}]',
+                                         encoding="utf-8")
+    assert read_trend(tmp_path)[0].tolerances == [Tolerance(0.99, 0.25, "ok")]
 
 
 @pytest.mark.parametrize("content, words", [
@@ -116,6 +125,8 @@ def test_read_trend_round_trips_what_write_trend_wrote(tmp_path):
     ('[{"name": "a", "step": "ten"}]', '"step"'),
     ('[{"name": "a", "step": 1, "tolerances": {"high": {}}}]', "not a number"),
     ('[{"name": "a", "step": 1, "tolerances": {"0.9": {"sigma": "x"}}}]', "not a sigma and a status"),
+    ('[{"name": "a", "tolerances": [{"level": 0.9, "sigma": "x", "status": "ok"}]}]', "not a sigma and a status"),
+    ('[{"name": "a", "loss_tolerances": 3}]', "not a list"),
     ('[{"step": 1}]', '"name"'),
     ('[{"name": "a", "colour": 1}]', "'colour'"),
 ])

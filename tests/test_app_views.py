@@ -76,8 +76,10 @@ def test_decoded_layout_keeps_right_tokens_and_shows_wrong_ones(setup):
     predicted[5], correct[5] = other, False
     layout = decoded_layout(codec, chunks, predicted, correct)
     a, b = layout.spans[5]
-    assert token_at(layout.spans, int(a)) == 5 if b > a else True
+    assert layout.text[a:b] == token_display(codec.tokenizer, other) and b > a  # the wrong token, shown
+    assert token_at(layout.spans, int(a)) == 5
     assert layout.text.startswith(chunks.text[: chunks.spans[5, 0]])
+    assert layout.text[b:] == chunks.text[chunks.spans[6, 0]:]  # the right tokens after it keep their characters
 
 
 def test_decoded_layout_matches_its_definition_token_by_token(setup):

@@ -35,7 +35,16 @@ def test_info_prints_sizes_hash_card_and_health(small_checkpoint, tmp_path, caps
         assert word in out, word
     assert main(["info", str(small_checkpoint), "--text", str(text), "--json"]) == 0
     data = json.loads(capsys.readouterr().out)
-    assert data["codec"]["config"]["latent_dim"] == 16 and data["health"]["active_dims"] >= 0
+    # the reference: core's own latent health of the same checkpoint on the same text
+    from core.codecs.checkpoint import load_codec
+    from core.engine.health import latent_health
+    from core.engine.text import chunk_text, load_text
+
+    codec = load_codec(small_checkpoint)
+    health = latent_health(codec, chunk_text(load_text(text), codec))
+    assert data["codec"]["config"]["latent_dim"] == 16
+    assert data["health"]["active_dims"] == health.active_dims
+    assert data["health"]["latent_rms"] == pytest.approx(health.latent_rms)
 
 
 def test_sweep_writes_files_and_refuses_to_overwrite(small_checkpoint, tmp_path, capsys):

@@ -95,8 +95,8 @@ def test_compare_codecs_end_to_end_and_write_read(tokenizer, tmp_path):
     assert comparison.scale_warning is not None and "2.00x" in comparison.scale_warning
     iso_a, iso_b = comparison.tolerances[0].absolute, comparison.tolerances[1].absolute
     ds_a, ds_b = comparison.tolerances[0].data_scale, comparison.tolerances[1].data_scale
-    assert [t["sigma"] for t in ds_a] == pytest.approx([t["sigma"] for t in ds_b], rel=1e-6)  # same model, rescaled
-    assert iso_b[1]["sigma"] > iso_a[1]["sigma"]  # the larger latent looks more tolerant in absolute sigma
+    assert [t.sigma for t in ds_a] == pytest.approx([t.sigma for t in ds_b], rel=1e-6)  # same model, rescaled
+    assert iso_b[1].sigma > iso_a[1].sigma  # the larger latent looks more tolerant in absolute sigma
     assert comparison.paired[0].unit == "token"
     out = comparison.write(tmp_path / "cmp")
     again = read_comparison(out)

@@ -10,6 +10,7 @@ import pytest
 from conftest import LookupCodec
 from core.analyses.compare import compare_codecs, paired_csv, tolerance_csv
 from core.analyses.trend import TREND_CSV_COLUMNS, TrendPoint, trend_csv
+from core.engine.tolerance import Tolerance
 
 NAMES = ('run 3, seed 1', 'the "wide" one')
 
@@ -44,10 +45,10 @@ def test_compare_csvs_round_trip_names_with_commas_and_quotes(comparison, tmp_pa
 
 def test_trend_csv_keeps_numbers_and_statuses_apart():
     ok = TrendPoint("/x/a.safetensors", NAMES[0], 100, "file name", sha256="a" * 64, accuracy_at_zero=1.0,
-                    tolerances={0.999: {"sigma": 0.02, "status": "ok"}, 0.99: {"sigma": 0.05, "status": "ok"},
-                                0.9: {"sigma": 2.0, "status": "above_grid"}}, latent_rms=0.7)
+                    tolerances=[Tolerance(0.999, 0.02, "ok"), Tolerance(0.99, 0.05, "ok"),
+                                Tolerance(0.9, 2.0, "above_grid")], latent_rms=0.7)
     fails = TrendPoint("/x/b.safetensors", NAMES[1], 200, "card", sha256="b" * 64, accuracy_at_zero=0.5,
-                       tolerances={level: {"sigma": None, "status": "below_at_zero"} for level in (0.999, 0.99, 0.9)},
+                       tolerances=[Tolerance(level, None, "below_at_zero") for level in (0.999, 0.99, 0.9)],
                        latent_rms=0.3)
     broken = TrendPoint("/x/c.safetensors", "c", 300, "file name", error='c.safetensors is "truncated", badly.')
     header, *rows = _rows(trend_csv([broken, fails, ok]))

@@ -4,7 +4,7 @@ import pytest
 import torch
 from scipy import stats
 
-from core.engine.health import ACTIVE_THRESHOLD, kl_to_standard_normal, nearest_distinct_half_distance
+from core.engine.health import kl_to_standard_normal, nearest_distinct_half_distance
 from core.engine.noise import NOISE_BLOCK, draw_eps
 from core.engine.metrics import SigmaAccumulator, ece_bin_index, score_logits, wilson_interval
 
@@ -133,9 +133,26 @@ def test_noise_does_not_depend_on_batching():
     assert not torch.equal(draw_eps(3, 2, 0, NOISE_BLOCK, 5), draw_eps(3, 1, 0, NOISE_BLOCK, 5))
 
 
-def test_active_dimension_threshold_is_the_usual_one():
-    # common practice: a dimension is active when Var_x E[z|x] > 0.01 (importance-weighted autoencoder literature)
-    assert ACTIVE_THRESHOLD == 0.01
+def test_active_dimensions_are_those_whose_mean_varies_more_than_the_usual_threshold(tokenizer, fixture_text):
+    # common practice (Burda et al., importance-weighted autoencoders): a dimension is active when
+    # Var_x E[z|x] > 0.01. Eight dimensions whose mean has variance 0, 0.005, 0.0098, 0.0102, 0.02, 1,
+    # 0.0099, 0.5 over the chunks: four are active, with either variance normalisation.
+    from conftest import LookupCodec
+    from core.engine.health import latent_health
+    from core.engine.noise import Encoded
+    from core.engine.text import chunk_text
+
+    codec = LookupCodec(tokenizer, per_token_dim=2)
+    chunks = chunk_text(fixture_text, codec)
+    n = chunks.num_chunks
+    assert n > 100  # so the 1/n and 1/(n-1) variances fall on the same side of 0.01
+    pattern = torch.tensor([1.0, -1.0]).repeat(n)[:n]
+    pattern = ((pattern - pattern.mean()) / pattern.std(unbiased=False)).unsqueeze(1)  # mean 0, variance 1
+    variances = torch.tensor([0.0, 0.005, 0.0098, 0.0102, 0.02, 1.0, 0.0099, 0.5])
+    mean = pattern * variances.sqrt() + 3.0  # an offset: the variance is about the mean, not about zero
+    health = latent_health(codec, chunks, encoded=Encoded(mean, None))
+    assert health.mean_variance_per_dim == pytest.approx(variances.numpy(), rel=1e-3, abs=1e-6)
+    assert health.active_dims == 4 and health.summary()["active_dims"] == 4
 
 
 def test_nearest_neighbour_half_distance_on_a_worked_example():

@@ -5,6 +5,7 @@ import csv
 import json
 import subprocess
 import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -70,8 +71,10 @@ def test_the_same_epsilon_is_reused_across_sigmas(tokenizer, fixture_text):
     assert torch.equal(z[0], mean)
 
 
-def test_cancelled_sweep_raises_and_leaves_nothing(lookup_codec, fixture_text, tmp_path):
-    chunks = chunk_text(fixture_text, lookup_codec)
+def test_a_cancelled_sweep_raises_and_stops_decoding(tokenizer, fixture_text):
+    codec = LookupCodec(tokenizer)
+    codec.decoded_latents = []
+    chunks = chunk_text(fixture_text, codec)
     calls = []
 
     def stop():
@@ -79,8 +82,107 @@ def test_cancelled_sweep_raises_and_leaves_nothing(lookup_codec, fixture_text, t
         return len(calls) > 3
 
     with pytest.raises(SweepCancelled):
-        run_sweep(lookup_codec, chunks, SweepSettings(sigmas=GRID, repeats=2), should_stop=stop)
-    assert list(tmp_path.iterdir()) == []
+        run_sweep(codec, chunks, SweepSettings(sigmas=GRID, repeats=2), should_stop=stop)
+    # a whole sweep decodes every chunk batch once per (repeat, sigma): 2 x 12 here; the cancelled one stopped at the 4th question
+    assert 0 < len(codec.decoded_latents) <= 3 < 2 * len(GRID)
+
+
+def _interrupt_decoding_after(monkeypatch, calls: int, only: str | None = None):
+    """Ctrl-C (KeyboardInterrupt) in the middle of the sweep: raised from the decode every opened codec goes through."""
+    from core.codecs.contract import OpenedCodec as Codec
+
+    real = Codec.decode
+    seen = []
+
+    def decode(self, z):
+        if only is None or self.name == only:
+            seen.append(1)
+            if len(seen) > calls:
+                raise KeyboardInterrupt
+        return real(self, z)
+
+    monkeypatch.setattr(Codec, "decode", decode)
+    return seen
+
+
+def _leftovers(folder):
+    """Files and folders the atomic writes stage beside their target (core.outputs.files: '.NAME.*')."""
+    return sorted(p.name for p in folder.iterdir() if p.name.startswith("."))
+
+
+def test_an_interrupted_command_line_sweep_writes_nothing(small_checkpoint, tmp_path, monkeypatch, capsys):
+    from core.cli import main
+
+    text = tmp_path / "t.txt"
+    text.write_text("Sleepers checked: 41 of 44. Fishplates: fine.\n" * 10, encoding="utf-8")
+    out = tmp_path / "results"
+    seen = _interrupt_decoding_after(monkeypatch, 3)
+    code = main(["sweep", str(small_checkpoint), "--text", str(text), "--sigmas", "0:0.4:0.1", "--repeats", "2",
+                 "--out", str(out), "--quiet"])
+    assert len(seen) == 4  # interrupted mid-sweep, not before it started
+    assert code == 130 and "nothing was written" in capsys.readouterr().err
+    assert not (out / small_checkpoint.stem).exists()
+    assert not out.exists() or list(out.iterdir()) == []
+    assert _leftovers(tmp_path) == []
+
+
+def test_an_interrupted_sweep_of_two_checkpoints_tells_the_truth_about_what_it_wrote(tmp_path, monkeypatch, capsys, small_codec):
+    from core.cli import main
+    from core.codecs.checkpoint import save_codec
+
+    for name in ("a", "b"):
+        save_codec(small_codec, tmp_path / f"{name}.safetensors")
+    text = tmp_path / "t.txt"
+    text.write_text("Sleepers checked: 41 of 44. Fishplates: fine.\n" * 10, encoding="utf-8")
+    out = tmp_path / "results"
+    _interrupt_decoding_after(monkeypatch, 3, only="b")  # a is swept (and written), b is interrupted
+    code = main(["sweep", str(tmp_path / "a.safetensors"), str(tmp_path / "b.safetensors"), "--text", str(text),
+                 "--sigmas", "0,0.2", "--repeats", "2", "--out", str(out), "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 130 and not (out / "b").exists() and _leftovers(tmp_path) == []
+    assert not out.exists() or _leftovers(out) == []
+    # either nothing is written, or the message does not say so and names what was
+    assert not (out / "a").exists() or ("nothing was written" not in err and str(out / "a") in err)
+
+
+def test_an_interrupted_write_leaves_no_staged_folder(small_checkpoint, tmp_path, monkeypatch, capsys):
+    from core.cli import main
+
+    text = tmp_path / "t.txt"
+    text.write_text("Sleepers checked: 41 of 44. Fishplates: fine.\n" * 10, encoding="utf-8")
+    out = tmp_path / "results"
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(np, "savez_compressed", interrupted)  # Ctrl-C while the arrays are written
+    code = main(["sweep", str(small_checkpoint), "--text", str(text), "--sigmas", "0,0.2", "--repeats", "1",
+                 "--out", str(out), "--quiet"])
+    assert code == 130 and "nothing was written" in capsys.readouterr().err
+    assert not (out / small_checkpoint.stem).exists()
+    assert not out.exists() and _leftovers(tmp_path) == []  # the staged folders beside the target are gone
+
+
+def test_an_interrupted_command_line_compare_writes_nothing(tokenizer, tmp_path, monkeypatch, capsys):
+    from core.cli import main
+    from core.codecs.checkpoint import Codec, save_codec
+    from core.codecs.model import ChunkMLPConfig, build_model
+
+    paths = []
+    for name in ("a", "b"):
+        torch.manual_seed(len(paths))
+        config = ChunkMLPConfig(chunk_size=4, vocab_size=tokenizer.get_vocab_size(), latent_dim=8, embed_dim=8, width=16, depth=1)
+        paths.append(tmp_path / f"{name}.safetensors")
+        save_codec(Codec(build_model(config), tokenizer), paths[-1])
+    text = tmp_path / "t.txt"
+    text.write_text("The 06:45 left Ober-Ränk on time; the café was shut.\n" * 10, encoding="utf-8")
+    out = tmp_path / "cmp"
+    seen = _interrupt_decoding_after(monkeypatch, 5, only="b")  # a is swept, b is interrupted
+    code = main(["compare", *map(str, paths), "--text", str(text), "--sigmas", "0,0.2,0.4", "--repeats", "1",
+                 "--out", str(out), "--quiet"])
+    assert len(seen) == 6
+    assert code == 130 and "nothing was written" in capsys.readouterr().err
+    assert not out.exists() and _leftovers(tmp_path) == []
 
 
 def test_failed_write_leaves_no_half_made_folder(lookup_codec, fixture_text, tmp_path, monkeypatch):
@@ -178,10 +280,64 @@ def test_posterior_noise_on_a_plain_codec_is_refused(lookup_codec, fixture_text)
         run_sweep(lookup_codec, chunks, SweepSettings(noise="posterior"))
 
 
-def test_posterior_noise_uses_the_posterior_std(small_codec, fixture_text):
-    chunks = chunk_text(fixture_text, small_codec)
-    result = run_sweep(small_codec, chunks, SweepSettings(sigmas=(0.0, 1.0), repeats=1, noise="posterior"))
-    assert result.curves[0].tokens == chunks.num_tokens
+class PosteriorLookup(LookupCodec):
+    """LookupCodec made variational: its posterior std is fixed per latent dimension, one value per
+    chunk position (slot j of the latent holds token j). The values are powers of two or zero, so
+    sigma · std ⊙ ε is exact in float32 whatever order the engine multiplies in."""
+
+    SLOT_STD = (0.0, 0.5, 1.0, 2.0)
+
+    def __init__(self, tokenizer, **kwargs):
+        super().__init__(tokenizer, **kwargs)
+        self.variational = True
+        self.std = torch.tensor(self.SLOT_STD).repeat_interleave(self.per_token_dim)
+
+    def encode(self, ids):
+        mean, _ = super().encode(ids)
+        return mean, self.std.expand_as(mean).clone()
+
+
+def test_posterior_noise_is_sigma_times_the_posterior_std_times_epsilon(tokenizer, fixture_text):
+    from core.engine.noise import draw_eps
+
+    codec = PosteriorLookup(tokenizer)
+    codec.decoded_latents = []
+    chunks = chunk_text(fixture_text, codec)
+    assert chunks.num_chunks <= 512  # one batch: the decoded latents are whole-text [N, D]
+    sigmas = (0.0, 0.25, 1.0)
+    run_sweep(codec, chunks, SweepSettings(sigmas=sigmas, repeats=2, noise="posterior", seed=5))
+    mean, std = codec.encode(chunks.ids())
+    z = codec.decoded_latents  # order: repeat 0 (σ0, σ1, σ2), repeat 1 (σ0, σ1, σ2)
+    assert len(z) == 2 * len(sigmas)
+    for r in range(2):
+        eps = draw_eps(5, r, 0, chunks.num_chunks, codec.latent_dim)  # DESIGN.md: ε per (seed, repeat, chunk)
+        for i, sigma in enumerate(sigmas):
+            # DESIGN.md "Noise models", posterior: z = mean + sigma · std ⊙ ε (exact: sigma and std are powers of two)
+            assert torch.equal(z[3 * r + i], mean + sigma * std * eps), (r, sigma)
+    assert torch.equal(z[1][:, : codec.per_token_dim], mean[:, : codec.per_token_dim])  # std 0: never moved
+
+
+def test_posterior_noise_follows_the_posterior_std_of_each_dimension(tokenizer, fixture_text):
+    # With std s_j in the slot of chunk position j, posterior noise at sigma moves that slot exactly as
+    # isotropic noise at sigma · s_j does (same seed, same ε); the lookup decoder reads each slot alone.
+    codec = PosteriorLookup(tokenizer)
+    chunks = chunk_text(fixture_text, codec)
+    sigmas = (0.0, 0.25, 0.5, 1.0)
+    iso_sigmas = (0.0, 0.125, 0.25, 0.5, 1.0, 2.0)
+    post = run_sweep(codec, chunks, SweepSettings(sigmas=sigmas, repeats=1, noise="posterior", seed=2))
+    iso = run_sweep(codec, chunks, SweepSettings(sigmas=iso_sigmas, repeats=1, noise="isotropic", seed=2))
+    position = np.arange(chunks.num_tokens) % codec.chunk_size
+    for j, s in enumerate(PosteriorLookup.SLOT_STD):
+        here = position == j
+        for i, sigma in enumerate(sigmas):
+            if s == 0:
+                assert np.array_equal(post.decoded[here, i], chunks.token_ids[here])  # std 0: never wrong
+            else:
+                assert np.array_equal(post.decoded[here, i], iso.decoded[here, iso_sigmas.index(sigma * s)]), (j, sigma)
+    # so the check can fail: isotropic noise does break position 0, and the curves differ
+    assert not np.array_equal(iso.decoded[position == 0, -1], chunks.token_ids[position == 0])
+    assert post.curves[-1].position_accuracy[0] == 1.0 > iso.curves[iso_sigmas.index(1.0)].position_accuracy[0]
+    assert post.curves[-1].position_accuracy[3] < iso.curves[iso_sigmas.index(1.0)].position_accuracy[3]
 
 
 @pytest.mark.parametrize(
@@ -200,10 +356,51 @@ def test_parse_sigmas():
             parse_sigmas(bad)
 
 
-def test_core_imports_no_qt():
-    code = "import sys, core, core.engine.sweep, core.engine.health, core.analyses.live, core.analyses.tokens, core.cli; print([m for m in sys.modules if m.split('.')[0] in ('PySide6', 'pyqtgraph', 'superqt', 'shiboken6')])"
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    assert out.stdout.strip() == "[]"
+CORE = Path(__file__).resolve().parent.parent / "core"
+QT_PACKAGES = ("PySide6", "shiboken6", "pyqtgraph", "superqt")
+# DEVELOPERS.md "Start-up": core modules defer torch; only the model itself and the training recipe import it
+TORCH_AT_IMPORT = {"core.codecs.model", "core.training.train"}
+
+
+def core_modules() -> list[str]:
+    import pkgutil
+
+    import core
+
+    return sorted(m.name for m in pkgutil.walk_packages(core.__path__, "core."))
+
+
+def _modules_loaded_by(modules: list[str], packages: tuple[str, ...]) -> dict[str, list[str]]:
+    """Import `modules` in a fresh interpreter; per package in `packages`, the modules of it that got loaded."""
+    code = ("import importlib, json, sys\n"
+            f"for name in {modules!r}: importlib.import_module(name)\n"
+            f"print(json.dumps({{p: sorted(m for m in sys.modules if m.split('.')[0] == p) for p in {packages!r}}}))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def test_the_walk_finds_every_module_of_core():
+    from_files = {".".join(("core",) + p.relative_to(CORE).with_suffix("").parts).removesuffix(".__init__")
+                  for p in CORE.rglob("*.py")}
+    found = core_modules()
+    assert set(found) == from_files - {"core"}
+    assert len(found) + 1 >= len(list(CORE.rglob("*.py")))  # core itself is the root of the walk
+    assert {"core.codecs", "core.engine", "core.analyses", "core.outputs", "core.training"} <= set(found)
+
+
+def test_no_module_of_core_imports_qt():
+    # STYLE.md / DEVELOPERS.md: core never imports Qt; every module found by walking the package, in a fresh interpreter
+    loaded = _modules_loaded_by(["core"] + core_modules(), QT_PACKAGES)
+    assert loaded == {p: [] for p in QT_PACKAGES}
+
+
+def test_core_imports_without_torch_except_the_model_and_the_training_recipe():
+    # DEVELOPERS.md "Start-up": nothing on the way to the first paint imports torch (about 2.5 s)
+    promised = ["core"] + [m for m in core_modules() if m not in TORCH_AT_IMPORT]
+    assert _modules_loaded_by(promised, ("torch",)) == {"torch": []}
+    # and the check can fail: the model module does import it
+    assert _modules_loaded_by(["core.codecs.model"], ("torch",))["torch"]
 
 
 def test_live_paths_agree_with_the_sweep(lookup_codec, fixture_text):

@@ -3,11 +3,13 @@
 from __future__ import annotations
 
 import argparse
+import math
 from dataclasses import replace
 
 import pytest
 import torch
 
+from conftest import documented_held_out, stdlib_corpus_files
 from core.codecs.checkpoint import load_codec
 from core.training.corpus import Corpus, CorpusInfo, file_text, is_held_out
 from core.codecs.tokenizer import train_byte_bpe
@@ -86,8 +88,28 @@ def test_tokenizer_training_is_deterministic(shared):
 def test_corpus_extracts_docstrings_and_comments_only():
     source = '"""Module doc."""\nimport os  # why os\n\ndef f():\n    """Function doc."""\n    return "not a doc"\n'
     assert file_text(source) == "Module doc.\nFunction doc.\nwhy os\n"
-    # the split rule is a pure function of the relative path
-    assert is_held_out("json/decoder.py") == is_held_out("json/decoder.py")
+
+
+def test_the_split_follows_the_documented_hash_rule():
+    # known answers, computed once with hashlib in a shell: the digest of "email/parser.py" is 0 mod 10,
+    # those of "json/decoder.py" and "os.py" are 3
+    assert is_held_out("email/parser.py") and not is_held_out("json/decoder.py") and not is_held_out("os.py")
+    names = [f"pkg{i}/mod{i}.py" for i in range(400)] + ["json/decoder.py", "email/parser.py", "os.py", "a.py"]
+    held = [name for name in names if is_held_out(name)]
+    assert held == [name for name in names if documented_held_out(name)]
+    assert 0 < len(held) < len(names)  # both sides of the split occur, so the comparison can fail
+
+
+def test_the_split_of_this_standard_library_holds_out_about_a_tenth():
+    # every stdlib path the corpus walks: the hash rule agrees with the docstring's, and a uniform hash
+    # mod 10 holds out Binomial(n, 0.1) files: within 4 standard deviations of n / 10 (common practice)
+    root, files = stdlib_corpus_files()
+    paths = [p.relative_to(root).as_posix() for p in files]
+    assert len(paths) > 200
+    held = [p for p in paths if is_held_out(p)]
+    assert held == [p for p in paths if documented_held_out(p)]
+    n = len(paths)
+    assert abs(len(held) - n / 10) <= 4 * math.sqrt(n * 0.1 * 0.9)
 
 
 def test_cli_arguments_parse():

@@ -14,7 +14,7 @@ import io
 import json
 import math
 import os
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Sequence
 
@@ -24,10 +24,16 @@ from core.codecs.contract import opened
 from core.errors import ChunkscopeError
 from core.outputs.files import result_folder, staged_folder
 from core.engine.noise import encode_chunks
-from core.engine.sweep import DEFAULT_SIGMAS, SweepResult, SweepSettings, read_sweep, run_sweep
+from core.engine.sweep import (
+    DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED, DEFAULT_SIGMAS, SweepResult, SweepSettings, read_sweep, run_sweep,
+)
 from core.outputs.reading import Damaged, json_kind, need
 from core.engine.text import chunk_text
+from core.engine.tolerance import LOSS, Tolerance
 
+ALPHA = 0.05  # the significance level of every paired test the tool reports
+SIGNIFICANT = f"p < {ALPHA:g}"
+COMPARISON_NOISES = ("data-scale", "isotropic")  # a comparison sweeps under both; either can be the main one
 EXACT_BELOW = 25
 SCALE_WARNING_RATIO = 1.5
 
@@ -117,7 +123,7 @@ class PairedComparison:
     unit: str
     rows: list[PairedRow]
 
-    def significant(self, alpha: float = 0.05) -> list[bool]:
+    def significant(self, alpha: float = ALPHA) -> list[bool]:
         return [r.pvalue < alpha for r in self.rows]
 
 
@@ -145,12 +151,27 @@ def paired_comparison(a: SweepResult, b: SweepResult) -> PairedComparison:
 
 @dataclass
 class ToleranceRow:
+    """One codec's tolerances. "absolute" and "data_scale" name the noise (absolute σ under
+    isotropic noise, relative σ under data-scale noise); each holds the accuracy-level
+    tolerances, and the *_loss lists the loss tolerances."""
+
     name: str
     sha256: str
     latent_rms: float
     accuracy_at_zero: float
-    absolute: list[dict]  # isotropic tolerances
-    data_scale: list[dict]
+    absolute: list[Tolerance]  # isotropic noise, kind "absolute"
+    data_scale: list[Tolerance]
+    absolute_loss: list[Tolerance] = field(default_factory=list)  # isotropic noise, kind "loss"
+    data_scale_loss: list[Tolerance] = field(default_factory=list)
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "ToleranceRow":
+        return cls(
+            data["name"], data["sha256"], float(data["latent_rms"]), float(data["accuracy_at_zero"]),
+            [Tolerance.from_dict(t) for t in data["absolute"]], [Tolerance.from_dict(t) for t in data["data_scale"]],
+            [Tolerance.from_dict(t, LOSS) for t in data.get("absolute_loss", [])],
+            [Tolerance.from_dict(t, LOSS) for t in data.get("data_scale_loss", [])],
+        )
 
 
 @dataclass
@@ -220,11 +241,11 @@ def _number(value: float | None, fmt: str = ".6g") -> str:
 def tolerance_csv(comparison: Comparison) -> str:
     rows = []
     for t in comparison.tolerances:
-        for noise, tols in (("isotropic", t.absolute), ("data-scale", t.data_scale)):
+        for noise, tols in (("isotropic", t.absolute + t.absolute_loss), ("data-scale", t.data_scale + t.data_scale_loss)):
             for row in tols:
                 rows.append([t.name, t.sha256, _number(t.latent_rms), _number(t.accuracy_at_zero, ".6f"), noise,
-                             row["level"], _number(row["sigma"]), row["status"]])
-    return _csv_text(["checkpoint", "sha256", "latent_rms", "accuracy_at_sigma0", "noise", "level", "sigma", "status"], rows)
+                             row.kind, row.level, _number(row.sigma), row.status])
+    return _csv_text(["checkpoint", "sha256", "latent_rms", "accuracy_at_sigma0", "noise", "kind", "level", "sigma", "status"], rows)
 
 
 def paired_csv(comparison: Comparison) -> str:
@@ -261,9 +282,9 @@ def compare_codecs(
     text: str,
     sigmas: Sequence[float] = DEFAULT_SIGMAS,
     absolute_sigmas: Sequence[float] | None = None,
-    repeats: int = 4,
-    seed: int = 0,
-    main_noise: str = "data-scale",
+    repeats: int = DEFAULT_REPEATS,
+    seed: int = DEFAULT_SEED,
+    main_noise: str = DEFAULT_NOISE,
     text_source: str = "",
     progress: Callable[[int, int], None] | None = None,
     should_stop: Callable[[], bool] | None = None,
@@ -273,8 +294,8 @@ def compare_codecs(
     codecs = [opened(c) for c in codecs]
     if len(codecs) < 2:
         raise ChunkscopeError("a comparison needs at least two checkpoints.")
-    if main_noise not in ("data-scale", "isotropic"):
-        raise ChunkscopeError("a comparison's main noise model is data-scale or isotropic.")
+    if main_noise not in COMPARISON_NOISES:
+        raise ChunkscopeError(f"a comparison's main noise model is {' or '.join(COMPARISON_NOISES)}, not {main_noise!r}.")
     chunked = [chunk_text(text, c, text_source or "the text") for c in codecs]
     encoded = []
     for codec, chunks in zip(codecs, chunked):
@@ -308,8 +329,8 @@ def compare_codecs(
     rows = []
     for i, codec in enumerate(codecs):
         iso, ds = results["isotropic"][i], results["data-scale"][i]
-        acc0 = ds.curves[0].token_accuracy if ds.sigmas[0] == 0 else float("nan")
-        rows.append(ToleranceRow(codec.name, codec.sha256, rms[i], acc0, [asdict(t) for t in iso.tolerances], [asdict(t) for t in ds.tolerances]))
+        rows.append(ToleranceRow(codec.name, codec.sha256, rms[i], ds.accuracy_at_zero, list(iso.tolerances),
+                                 list(ds.tolerances), list(iso.loss_tolerances), list(ds.loss_tolerances)))
     main = results[main_noise]
     paired = [paired_comparison(main[0], other) for other in main[1:]]
     settings_dict = {
@@ -358,12 +379,9 @@ def _comparison_from_json(directory: Path, label: str, data: Any) -> Comparison:
         tolerances = []
         for t in need(data, "tolerances", list):
             try:
-                row = ToleranceRow(**t)
-            except TypeError:
-                raise Damaged("its tolerances are not rows of checkpoint tolerances") from None
-            for tols in (row.absolute, row.data_scale):
-                if not isinstance(tols, list) or not all(isinstance(x, dict) and {"level", "sigma", "status"} <= set(x) for x in tols):
-                    raise Damaged(f"the tolerances of {row.name!r} are not a list of levels with their sigma and status")
+                row = ToleranceRow.from_dict(t)
+            except (TypeError, KeyError, ValueError, AttributeError):
+                raise Damaged("its tolerances are not rows of checkpoint tolerances with their levels, sigma and status") from None
             tolerances.append(row)
         paired = []
         for p in need(data, "paired", list):
@@ -382,4 +400,7 @@ def _comparison_from_json(directory: Path, label: str, data: Any) -> Comparison:
         raise ChunkscopeError(f"{label}/compare.json is damaged: {exc}.") from None
     iso = [read_sweep(directory / "sweeps" / "isotropic" / n, f"{label}/sweeps/isotropic/{n}") for n in names]
     ds = [read_sweep(directory / "sweeps" / "data-scale" / n, f"{label}/sweeps/data-scale/{n}") for n in names]
+    for row, a, d in zip(tolerances, iso, ds):  # written before the loss tolerance: take it from the sweeps
+        row.absolute_loss = row.absolute_loss or list(a.loss_tolerances)
+        row.data_scale_loss = row.data_scale_loss or list(d.loss_tolerances)
     return Comparison(settings, iso, ds, tolerances, paired, main_noise, warning)

@@ -7,7 +7,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from core.analyses.compare import Comparison, PairedComparison, unit_correctness
+from core.analyses.compare import ALPHA, Comparison, PairedComparison, unit_correctness
 from core.analyses.views import token_layout
 from core.engine.sweep import SweepResult
 
@@ -87,7 +87,7 @@ def comparison_side_by_side(comparison: Comparison, sigma_index: int, pair_index
     return side_by_side(main[0], main[pair_index + 1], sigma_index, pair_index, comparison.paired[pair_index].unit)
 
 
-def first_sigma_to_show(pair: PairedComparison | None, alpha: float = 0.05) -> int:
+def first_sigma_to_show(pair: PairedComparison | None, alpha: float = ALPHA) -> int:
     """Where the text view opens: the first sigma at which A and B differ significantly, else
     the one where they disagree on the most units."""
     rows = pair.rows if pair is not None else []

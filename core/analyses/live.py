@@ -6,6 +6,7 @@ from __future__ import annotations
 
 from core.analyses.views import LivePerturbation, merge_windows, perturb_window
 from core.engine.noise import Encoded
+from core.engine.sweep import DEFAULT_NOISE, DEFAULT_SEED
 from core.engine.text import Chunks
 
 
@@ -14,8 +15,8 @@ def perturb_once(
     chunks: Chunks,
     encoded: Encoded,
     sigma: float,
-    noise: str = "data-scale",
-    seed: int = 0,
+    noise: str = DEFAULT_NOISE,
+    seed: int = DEFAULT_SEED,
     draw: int = 0,
     top_k: int = 5,
     should_stop=None,

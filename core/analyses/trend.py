@@ -8,12 +8,13 @@ import json
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import Any, Callable, Iterator
 
-from core.codecs.checkpoint import load_codec
+from core.codecs.open import checkpoints_in_folder, open_checkpoint
 from core.errors import ChunkscopeError, SweepCancelled
 from core.engine.sweep import TOLERANCE_LEVELS, SweepResult, SweepSettings, run_sweep
 from core.engine.text import chunk_text
+from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, Tolerance
 from core.outputs.files import Outputs, OutputRefusedError, check_target, check_writable
 from core.outputs.reading import Damaged, json_kind, need
 
@@ -44,28 +45,48 @@ class TrendPoint:
     step_source: str  # "card", "file name" or "none"
     sha256: str = ""
     accuracy_at_zero: float | None = None
-    tolerances: dict[float, dict] = field(default_factory=dict)  # level -> {"sigma", "status"}
+    tolerances: list[Tolerance] = field(default_factory=list)  # kind "absolute"
     latent_rms: float | None = None
     error: str | None = None
     result: SweepResult | None = None
+    loss_tolerances: list[Tolerance] = field(default_factory=list)  # kind "loss"
+
+    def tolerance(self, level: float, kind: str = ABSOLUTE) -> Tolerance | None:
+        for t in self.loss_tolerances if kind == LOSS else self.tolerances:
+            if abs(t.level - level) < 1e-12:
+                return t
+        return None
 
     def to_dict(self) -> dict:
         return {
             "path": self.path, "name": self.name, "step": self.step, "step_source": self.step_source,
             "sha256": self.sha256, "accuracy_at_zero": self.accuracy_at_zero, "latent_rms": self.latent_rms,
-            "tolerances": {str(k): v for k, v in self.tolerances.items()}, "error": self.error,
+            "tolerances": [t.to_dict() for t in self.tolerances],
+            "loss_tolerances": [t.to_dict() for t in self.loss_tolerances], "error": self.error,
         }
 
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> "TrendPoint":
+        """A point of trend.json back; older files keyed the tolerances by level and had no loss tolerances."""
+        data = dict(data)
+        tolerances = data.pop("tolerances", [])
+        if isinstance(tolerances, dict):
+            tolerances = [{"level": float(k), **v} for k, v in tolerances.items()]
+        loss = data.pop("loss_tolerances", [])
+        return cls(**data, tolerances=[Tolerance.from_dict(t) for t in tolerances],
+                   loss_tolerances=[Tolerance.from_dict(t, LOSS) for t in loss])
 
-def checkpoints_in(folder: str | Path) -> list[Path]:
+
+def checkpoints_in(folder: str | Path, adapter: str | None = None) -> list[Path]:
     folder = Path(folder)
     if not folder.exists():
         raise ChunkscopeError(f"{folder} does not exist.")
     if not folder.is_dir():
         raise ChunkscopeError(f"{folder} is not a folder.")
-    paths = sorted(folder.glob("*.safetensors"))
+    paths = checkpoints_in_folder(folder, adapter)
     if not paths:
-        raise ChunkscopeError(f"{folder} holds no .safetensors checkpoints.")
+        what = "checkpoints" if adapter else ".safetensors checkpoints or ONNX codec folders"
+        raise ChunkscopeError(f"{folder} holds no {what}.")
     return paths
 
 
@@ -76,14 +97,17 @@ def trend(
     text_source: str = "",
     should_stop: Callable[[], bool] | None = None,
     progress: Callable[[int, int], None] | None = None,
+    adapter: str | None = None,
 ) -> Iterator[TrendPoint]:
-    """Yield one point per checkpoint as it finishes; a bad checkpoint yields a point with `error`."""
-    paths = checkpoints_in(folder)
+    """Yield one point per checkpoint as it finishes; a bad checkpoint yields a point with `error`.
+
+    `adapter` opens every checkpoint that is not built-in or ONNX (`open_checkpoint`)."""
+    paths = checkpoints_in(folder, adapter)
     for index, path in enumerate(paths):
         if should_stop is not None and should_stop():
             raise SweepCancelled()
         try:
-            codec = load_codec(path)
+            codec = open_checkpoint(path, adapter)
         except ChunkscopeError as exc:
             step = step_from_name(path.stem)
             yield TrendPoint(str(path), path.stem, step, "file name" if step is not None else "none", error=str(exc))
@@ -105,7 +129,7 @@ def trend(
         acc0 = result.curves[0].token_accuracy if result.sigmas[0] == 0 else None
         yield TrendPoint(
             str(path), codec.name, step, source, sha256=codec.sha256, accuracy_at_zero=acc0,
-            tolerances={t.level: {"sigma": t.sigma, "status": t.status} for t in result.tolerances},
+            tolerances=list(result.tolerances), loss_tolerances=list(result.loss_tolerances),
             latent_rms=result.latent_rms, result=result,
         )
 
@@ -114,11 +138,18 @@ def sort_points(points: list[TrendPoint]) -> list[TrendPoint]:
     return sorted(points, key=lambda p: (p.step is None, p.step if p.step is not None else 0, p.name))
 
 
-TREND_CSV_COLUMNS = [
-    "name", "step", "step_source", "status", "accuracy_at_sigma0",
-    "tol_99.9", "tol_99.9_status", "tol_99", "tol_99_status", "tol_90", "tol_90_status",
-    "latent_rms", "sha256", "error",
-]
+TREND_LEVELS = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
+
+
+def _column(kind: str, level: float) -> str:
+    return f"{'tol' if kind == ABSOLUTE else 'loss_tol'}_{level * 100:g}"  # accuracy in % or a loss in points
+
+
+TREND_CSV_COLUMNS = (
+    ["name", "step", "step_source", "status", "accuracy_at_sigma0"]
+    + [name for kind, level in TREND_LEVELS for name in (_column(kind, level), _column(kind, level) + "_status")]
+    + ["latent_rms", "sha256", "error"]
+)
 NOT_MEASURED = "not measured"
 
 
@@ -131,12 +162,12 @@ def trend_csv(points: list[TrendPoint]) -> str:
     writer.writerow(TREND_CSV_COLUMNS)
     for p in sort_points(points):
         cells: list = []
-        for level in TOLERANCE_LEVELS:
-            t = p.tolerances.get(level)
-            if p.error is not None or not t:
+        for kind, level in TREND_LEVELS:
+            t = p.tolerance(level, kind)
+            if p.error is not None or t is None:
                 cells += ["", NOT_MEASURED]
             else:
-                cells += ["" if t.get("sigma") is None else f"{t['sigma']:.6g}", t.get("status", "")]
+                cells += ["" if t.sigma is None else f"{t.sigma:.6g}", t.status]
         writer.writerow(
             [p.name, "" if p.step is None else p.step, p.step_source, "error" if p.error is not None else "ok",
              "" if p.accuracy_at_zero is None else f"{p.accuracy_at_zero:.6f}"]
@@ -182,7 +213,37 @@ def check_trend_output(folder: str | Path, force: bool = False) -> None:
     check_writable(folder / "trend.csv")
 
 
-_POINT_FIELDS = {"path", "name", "step", "step_source", "sha256", "accuracy_at_zero", "latent_rms", "tolerances", "error"}
+_POINT_FIELDS = {"path", "name", "step", "step_source", "sha256", "accuracy_at_zero", "latent_rms", "tolerances",
+                 "loss_tolerances", "error"}
+
+
+def _tolerances_from(raw: object, name: str, kind: str) -> list[Tolerance]:
+    """The tolerances of a point: a list of Tolerance JSON forms, or (older files, accuracy
+    levels only) an object keyed by level; Damaged when they are neither."""
+    key = "tolerances" if kind == ABSOLUTE else "loss_tolerances"
+    if isinstance(raw, dict) and kind == ABSOLUTE:
+        entries = []
+        for level, t in raw.items():
+            try:
+                float(level)
+            except ValueError:
+                raise Damaged(f"{name!r} has a tolerance at level {level!r}, which is not a number") from None
+            entries.append((level, {"level": level, **t} if isinstance(t, dict) else t))
+    elif isinstance(raw, list):
+        entries = [(t.get("level") if isinstance(t, dict) else None, t) for t in raw]
+    else:
+        raise Damaged(f'the "{key}" of {name!r} are {json_kind(raw)}, not a list')
+    tolerances = []
+    for level, t in entries:
+        if not isinstance(t, dict) or not isinstance(t.get("sigma", None), (int, float, type(None))) \
+                or isinstance(t.get("sigma"), bool) or not isinstance(t.get("status", ""), str) \
+                or isinstance(t.get("level"), bool) or not isinstance(t.get("level"), (int, float, str)):
+            raise Damaged(f"the {level} tolerance of {name!r} is not a sigma and a status")
+        try:
+            tolerances.append(Tolerance.from_dict({"status": "ok", **t}, kind))
+        except (TypeError, ValueError):
+            raise Damaged(f"the {level} tolerance of {name!r} is not a sigma and a status") from None
+    return tolerances
 
 
 def _point_from_dict(row: object) -> TrendPoint:
@@ -203,23 +264,12 @@ def _point_from_dict(row: object) -> TrendPoint:
         value = row.get(key)
         if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))):
             raise Damaged(f'the "{key}" of {name!r} is {json_kind(value)}, not a number')
-    raw = row.get("tolerances", {})
-    if not isinstance(raw, dict):
-        raise Damaged(f'the "tolerances" of {name!r} are {json_kind(raw)}, not an object')
-    tolerances: dict[float, dict] = {}
-    for level, t in raw.items():
-        try:
-            key = float(level)
-        except ValueError:
-            raise Damaged(f"{name!r} has a tolerance at level {level!r}, which is not a number") from None
-        if not isinstance(t, dict) or not isinstance(t.get("sigma", None), (int, float, type(None))) \
-                or isinstance(t.get("sigma"), bool) or not isinstance(t.get("status", ""), str):
-            raise Damaged(f"the {level} tolerance of {name!r} is not a sigma and a status")
-        tolerances[key] = dict(t)
+    tolerances = _tolerances_from(row.get("tolerances", []), name, ABSOLUTE)
+    loss_tolerances = _tolerances_from(row.get("loss_tolerances", []), name, LOSS)
     return TrendPoint(
         path=row.get("path") or "", name=name, step=step, step_source=row.get("step_source") or "none",
         sha256=row.get("sha256") or "", accuracy_at_zero=row.get("accuracy_at_zero"), tolerances=tolerances,
-        latent_rms=row.get("latent_rms"), error=row.get("error"),
+        latent_rms=row.get("latent_rms"), error=row.get("error"), loss_tolerances=loss_tolerances,
     )
 
 

@@ -46,18 +46,18 @@ def measured_rows(card: Mapping[str, Any]) -> list[Row]:
     if not isinstance(measured, Mapping):
         return []
     rows: list[Row] = []
-    for key, label in (("held_out", "held-out text"), ("demo", "demo text")):
+    for key, label in (("held_out", "held-out σ = 0"), ("demo", "demo σ = 0")):
         part = measured.get(key)
         if isinstance(part, Mapping) and isinstance(part.get("token_accuracy_sigma0"), (int, float)):
             tokens = part.get("tokens")
-            on = f" of {tokens:,} tokens" if isinstance(tokens, int) else ""
-            rows.append((f"reconstructs ({label})", f"{_pct(part['token_accuracy_sigma0'])}{on} at σ = 0"))
+            on = f" ({tokens:,})" if isinstance(tokens, int) else ""
+            rows.append((label, f"{_pct(part['token_accuracy_sigma0'])} of tokens right{on}"))
     tolerance = measured.get("tolerance")
     if isinstance(tolerance, Mapping):
         for noise, unit in (("data-scale", "relative σ"), ("isotropic", "absolute σ")):
             level = tolerance.get(noise, {}).get("0.99") if isinstance(tolerance.get(noise), Mapping) else None
             if isinstance(level, Mapping) and isinstance(level.get("sigma"), (int, float)):
-                rows.append((f"99 % tolerance, {noise}", f"{level['sigma']:.3g} {unit}"))
+                rows.append((f"99 % at {noise}", f"σ {level['sigma']:.3g} ({unit.split()[0]})"))
     if isinstance(measured.get("latent_rms"), (int, float)):
         rows.append(("latent RMS (card)", f"{measured['latent_rms']:.4g}"))
     return rows

@@ -8,7 +8,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from core.deferred import torch
-from core.engine.noise import Encoded, encode_chunks
+from core.engine.noise import Encoded, encode_chunks, noise_scale
 from core.engine.text import Chunks
 
 ACTIVE_THRESHOLD = 0.01  # variance of the mean over chunks; common practice (importance-weighted AE literature)
@@ -100,13 +100,8 @@ def expected_noise_norm(sigma: float, noise: str, encoded: Encoded) -> float:
     """Root-mean-square length of the perturbation sigma · scale ⊙ ε, comparable with the
     nearest-neighbour half-distance: a chunk whose perturbation is shorter than its
     half-distance is still nearest to its own mean."""
-    if noise == "isotropic":
-        return float(sigma) * float(encoded.mean.shape[1]) ** 0.5
-    if noise == "data-scale":
-        return float(sigma) * float(encoded.rms_per_dim.square().sum().sqrt())
-    if noise == "posterior" and encoded.std is not None:
-        return float(sigma) * float(encoded.std.square().sum(1).mean().sqrt())
-    raise ValueError(f"no noise norm for noise model {noise!r}")
+    scale = noise_scale(noise, encoded, 0, encoded.num_chunks)  # [1 or N, D]
+    return float(sigma) * float(scale.square().sum(1).mean().sqrt())
 
 
 @dataclass

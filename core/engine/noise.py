@@ -8,7 +8,7 @@ sweep and in the live view, whatever batch size is used (common random numbers).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable
+from typing import Callable, Mapping
 
 import numpy as np
 
@@ -16,7 +16,6 @@ from core.codecs.contract import opened
 from core.deferred import torch
 from core.errors import SettingsError, SweepCancelled
 
-NOISE_MODELS = ("isotropic", "posterior", "data-scale")
 NOISE_BLOCK = 256
 
 Progress = Callable[[int, int], None]
@@ -62,24 +61,67 @@ def encode_chunks(
     return Encoded(torch.cat(means), torch.cat(stds) if stds else None)
 
 
+@dataclass(frozen=True)
+class NoiseModel:
+    """One noise model of DESIGN.md: how sigma reads, and the per-dimension factor that multiplies sigma · ε."""
+
+    name: str
+    unit: str  # short, beside a number: "relative σ"
+    axis_label: str  # longer, under a plot's axis
+    description: str  # the perturbed latent
+    needs_variational: bool
+    in_latent_units: bool  # σ is in the latent's own units, so it grows with the latent's scale
+    scale: Callable[["Encoded", int, int], "torch.Tensor"]
+
+
+def _ones(encoded: Encoded, start: int, stop: int) -> torch.Tensor:
+    return torch.ones(1, encoded.mean.shape[1])
+
+
+def _posterior_std(encoded: Encoded, start: int, stop: int) -> torch.Tensor:
+    if encoded.std is None:
+        raise SettingsError("posterior noise needs a variational codec, which returns a posterior std.")
+    return encoded.std[start:stop]
+
+
+def _rms(encoded: Encoded, start: int, stop: int) -> torch.Tensor:
+    return encoded.rms_per_dim.unsqueeze(0)
+
+
+NOISE_MODELS: Mapping[str, NoiseModel] = {
+    m.name: m
+    for m in (
+        NoiseModel("isotropic", "absolute σ", "σ (absolute)", "z = mean + σ · ε", False, True, _ones),
+        NoiseModel("posterior", "posterior σ", "σ in units of the posterior std", "z = mean + σ · std ⊙ ε", True, False,
+                   _posterior_std),
+        NoiseModel("data-scale", "relative σ", "σ relative to each latent dimension's RMS", "z = mean + σ · r ⊙ ε, "
+                   "r = each dimension's RMS over the text", False, False, _rms),
+    )
+}
+
+
+def noise_model(name: str) -> NoiseModel:
+    """The noise model called `name`, or the one sentence that says which exist."""
+    try:
+        return NOISE_MODELS[name]
+    except (KeyError, TypeError):
+        raise SettingsError(f"the noise model must be one of {', '.join(NOISE_MODELS)}, not {name!r}.") from None
+
+
+def sigma_unit(name: str) -> str:
+    """"relative σ", "absolute σ" or "posterior σ"; plain "σ" for a name that is not a noise model."""
+    model = NOISE_MODELS.get(name)
+    return model.unit if model is not None else "σ"
+
+
 def check_noise(noise: str, codec) -> None:
-    if noise not in NOISE_MODELS:
-        raise SettingsError(f"the noise model must be one of {', '.join(NOISE_MODELS)}, not {noise!r}.")
-    if noise == "posterior" and not codec.variational:
-        raise SettingsError(f"posterior noise needs a variational codec, and {opened(codec).name} is a plain autoencoder.")
+    if noise_model(noise).needs_variational and not codec.variational:
+        raise SettingsError(f"{noise} noise needs a variational codec, and {opened(codec).name} is a plain autoencoder.")
 
 
 def noise_scale(noise: str, encoded: Encoded, start: int, stop: int) -> torch.Tensor:
     """The per-dimension factor that multiplies sigma · ε for chunks start..stop."""
-    if noise == "isotropic":
-        return torch.ones(1, encoded.mean.shape[1])
-    if noise == "posterior":
-        if encoded.std is None:
-            raise SettingsError("posterior noise needs a variational codec, which returns a posterior std.")
-        return encoded.std[start:stop]
-    if noise == "data-scale":
-        return encoded.rms_per_dim.unsqueeze(0)
-    raise SettingsError(f"the noise model must be one of {', '.join(NOISE_MODELS)}, not {noise!r}.")
+    return noise_model(noise).scale(encoded, start, stop)
 
 
 def _block_seed(seed: int, repeat: int, block: int) -> int:

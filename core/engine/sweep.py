@@ -14,7 +14,7 @@ import math
 import os
 import platform
 import time
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Sequence
@@ -27,12 +27,16 @@ from core.deferred import torch
 from core.errors import ChunkscopeError, SettingsError, SweepCancelled
 from core.outputs.files import result_folder, staged_folder
 from core.outputs.reading import Damaged, json_kind, need
-from core.engine.noise import NOISE_BLOCK, NOISE_MODELS, Encoded, Progress, ShouldStop, check_noise, draw_eps, encode_chunks, noise_scale
+from core.engine.noise import (
+    NOISE_BLOCK, NOISE_MODELS, Encoded, Progress, ShouldStop, check_noise, draw_eps, encode_chunks, noise_model, noise_scale,
+)
 from core.engine.metrics import SigmaAccumulator, SigmaMetrics, frequency_buckets
 from core.engine.text import Chunks
+from core.engine.tolerance import (  # noqa: F401 (re-exported; the vocabulary lives in core.engine.tolerance)
+    LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, Tolerance, loss_tolerance_at, tolerance_at, tolerance_text, tolerances_of,
+)
 from core.codecs.tokenizer import token_display
 
-TOLERANCE_LEVELS = (0.999, 0.99, 0.9)
 DEFAULT_NOISE = "data-scale"
 DEFAULT_REPEATS = 4
 DEFAULT_SEED = 0
@@ -81,8 +85,7 @@ class SweepSettings:
         sigmas = tuple(sorted(set(sigmas)))
         if not isinstance(self.repeats, int) or not 1 <= self.repeats <= 10_000:
             raise SettingsError(f"repeats must be a whole number from 1 to 10000, not {self.repeats!r}.")
-        if self.noise not in NOISE_MODELS:
-            raise SettingsError(f"the noise model must be one of {', '.join(NOISE_MODELS)}, not {self.noise!r}.")
+        noise_model(self.noise)
         if not isinstance(self.seed, int) or self.seed < 0:
             raise SettingsError(f"the seed must be a whole number >= 0, not {self.seed!r}.")
         if isinstance(self.batch_chunks, bool) or not isinstance(self.batch_chunks, int) or self.batch_chunks < 1:
@@ -94,42 +97,6 @@ class SweepSettings:
 
     def to_dict(self) -> dict:
         return {"sigmas": list(self.sigmas), "repeats": self.repeats, "noise": self.noise, "seed": self.seed}
-
-
-@dataclass
-class Tolerance:
-    """Largest sigma before token accuracy first drops below `level`, interpolated on the grid.
-
-    status: "ok"; "above_grid" (never drops: sigma is the grid's last point, a lower
-    bound); "below_at_zero" (already below at the first sigma: sigma is None).
-    """
-
-    level: float
-    sigma: float | None
-    status: str
-
-    def label(self) -> str:
-        return tolerance_text(self.sigma, self.status)
-
-
-def tolerance_text(sigma: float | None, status: str) -> str:
-    """How a tolerance reads: its sigma, "> sigma" when accuracy never dropped on the grid, or "fails at 0"."""
-    if status == "below_at_zero":
-        return "fails at 0"
-    if status == "above_grid":
-        return f"> {sigma:.4g}"
-    return f"{sigma:.4g}"
-
-
-def tolerance_at(sigmas: Sequence[float], accuracy: Sequence[float], level: float) -> Tolerance:
-    for i, (s, a) in enumerate(zip(sigmas, accuracy)):
-        if a < level:
-            if i == 0:
-                return Tolerance(level, None, "below_at_zero")
-            s0, a0 = sigmas[i - 1], accuracy[i - 1]
-            fraction = (a0 - level) / (a0 - a) if a0 != a else 0.0
-            return Tolerance(level, float(s0 + fraction * (s - s0)), "ok")
-    return Tolerance(level, float(sigmas[-1]), "above_grid")
 
 
 def critical_sigmas(sigmas: Sequence[float], wrong_counts: np.ndarray, repeats: int) -> np.ndarray:
@@ -155,6 +122,7 @@ class SweepResult:
     elapsed_s: float
     decoded_chunks: int
     token_text: dict[int, str] = field(default_factory=dict)  # readable form of every id in the text or decoded
+    loss_tolerances: list[Tolerance] = field(default_factory=list)  # kind "loss", one per LOSS_LEVELS
 
     def display(self, token_id: int) -> str:
         return self.token_text.get(int(token_id), f"#{int(token_id)}")
@@ -167,11 +135,19 @@ class SweepResult:
     def codec_name(self) -> str:
         return self.provenance["codec"]["name"]
 
-    def tolerance(self, level: float) -> Tolerance:
-        for t in self.tolerances:
+    @property
+    def accuracy_at_zero(self) -> float:
+        """Token accuracy at σ = 0 (NaN when the grid has no σ = 0)."""
+        return self.curves[0].token_accuracy if self.curves and self.sigmas[0] == 0 else float("nan")
+
+    def tolerance(self, level: float, kind: str = "absolute") -> Tolerance:
+        for t in self.loss_tolerances if kind == LOSS else self.tolerances:
             if abs(t.level - level) < 1e-12:
                 return t
-        return tolerance_at(self.sigmas, [c.token_accuracy for c in self.curves], level)
+        accuracy = [c.token_accuracy for c in self.curves]
+        if kind == LOSS:
+            return loss_tolerance_at(self.sigmas, accuracy, level, self.chunks.num_tokens)
+        return tolerance_at(self.sigmas, accuracy, level, self.chunks.num_tokens)
 
     def token_accuracy_curve(self, token_index: int) -> np.ndarray:
         return 1.0 - self.wrong_counts[token_index].astype(np.float64) / self.settings.repeats
@@ -184,7 +160,8 @@ class SweepResult:
             "elapsed_s": self.elapsed_s,
             "decoded_chunks": self.decoded_chunks,
             "chunks_per_second": self.decoded_chunks / self.elapsed_s if self.elapsed_s > 0 else None,
-            "tolerances": [asdict(t) for t in self.tolerances],
+            "tolerances": [t.to_dict() for t in self.tolerances],
+            "loss_tolerances": [t.to_dict() for t in self.loss_tolerances],
             "curves": [c.to_dict() for c in self.curves],
         }
 
@@ -327,8 +304,11 @@ def _sweep_from_files(label: str, raw: dict[str, Any]) -> SweepResult:
         except (TypeError, ValueError, AttributeError):
             raise Damaged("its curves do not hold the metrics of a sweep") from None
         try:
-            tolerances = [Tolerance(**t) for t in need(data, "tolerances", list)]
-        except TypeError:
+            tolerances = [Tolerance.from_dict(t) for t in need(data, "tolerances", list)]
+            loss = None
+            if "loss_tolerances" in data:
+                loss = [Tolerance.from_dict(t, LOSS) for t in need(data, "loss_tolerances", list)]
+        except (TypeError, KeyError, ValueError, AttributeError):
             raise Damaged("its tolerances are not tolerances") from None
         latent_rms = need(data, "latent_rms", (int, float))
         elapsed = need(data, "elapsed_s", (int, float))
@@ -375,11 +355,14 @@ def _sweep_from_files(label: str, raw: dict[str, Any]) -> SweepResult:
         chunk_size=chunk_size,
         pad_id=pad_id,
     )
+    if loss is None:  # written before the loss tolerance: measure it from the stored curve
+        loss = tolerances_of(settings.sigmas, [c.token_accuracy for c in curves], chunks.num_tokens)[1]
     return SweepResult(
         settings=settings,
         provenance=prov,
         curves=curves,
         tolerances=tolerances,
+        loss_tolerances=loss,
         chunks=chunks,
         wrong_counts=arrays["wrong_counts"],
         decoded=arrays["decoded"],
@@ -467,8 +450,7 @@ def run_sweep(
                 if progress is not None:
                     progress(done, total)
     curves = [acc.compute() for acc in accumulators]
-    accuracy = [c.token_accuracy for c in curves]
-    tolerances = [tolerance_at(sigmas, accuracy, level) for level in TOLERANCE_LEVELS]
+    tolerances, loss_tolerances = tolerances_of(sigmas, [c.token_accuracy for c in curves], chunks.num_tokens)
     elapsed = time.perf_counter() - started
     prov = provenance(codec, chunks, settings, text_source)
     prov["elapsed_s"] = elapsed
@@ -478,6 +460,7 @@ def run_sweep(
         provenance=prov,
         curves=curves,
         tolerances=tolerances,
+        loss_tolerances=loss_tolerances,
         chunks=chunks,
         wrong_counts=wrong_counts,
         decoded=decoded,

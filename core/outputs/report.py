@@ -12,9 +12,14 @@ from html import escape
 from typing import Sequence
 
 import core
-from core.analyses.compare import Comparison
+from core.analyses.compare import ALPHA, SIGNIFICANT, Comparison
 from core.outputs.svgplot import Chart, Marker, Series, render
-from core.engine.sweep import SweepResult, tolerance_text
+from core.engine.noise import NOISE_MODELS
+from core.engine.sweep import DEFAULT_NOISE, SweepResult
+from core.engine.tolerance import (
+    ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, level_name, level_percent, resolution_note,
+    UNRESOLVABLE, status_notes, tolerance_text,
+)
 from core.analyses.tokens import fragile_types
 from core.analyses.trend import TrendPoint, sort_points
 
@@ -39,8 +44,21 @@ def _pct(x: float | None, digits: int = 3) -> str:
     return "—" if x is None or (isinstance(x, float) and math.isnan(x)) else f"{100 * x:.{digits}f} %"
 
 
-def _tol(t: dict) -> str:
-    return escape(tolerance_text(t["sigma"], t["status"]))
+def _tol(t) -> str:
+    return escape(tolerance_text(t))
+
+
+# the report's tolerance columns: accuracy-level tolerances, then loss tolerances
+_LEVELS = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
+
+
+def _level_heads() -> str:
+    return "".join(f"<th>{level_percent(level, kind)}</th>" for kind, level in _LEVELS)
+
+
+def _level_groups() -> str:
+    """The header row above `_level_heads`, naming the two kinds of tolerance."""
+    return f"<th colspan={len(TOLERANCE_LEVELS)}>accuracy ≥</th><th colspan={len(LOSS_LEVELS)}>loss from σ = 0 ≤</th>"
 
 
 def provenance_caption(sweeps: Sequence[SweepResult]) -> str:
@@ -58,9 +76,10 @@ def accuracy_chart(sweeps: Sequence[SweepResult], title: str = "Token accuracy")
         Series(r.codec_name, r.sigmas, [c.token_accuracy for c in r.curves], band=([c.accuracy_low for c in r.curves], [c.accuracy_high for c in r.curves]))
         for r in sweeps
     ]
-    markers = [Marker(t.sigma, f"{r.codec_name} 99 %") for r in sweeps for t in r.tolerances if t.level == 0.99 and t.status == "ok"]
+    marked = TOLERANCE_LEVELS[1]
+    markers = [Marker(t.sigma, f"{r.codec_name} {level_percent(marked)}") for r in sweeps for t in [r.tolerance(marked)] if t.found]
     return Chart(f"{title} ({noise} noise, Wilson 95 % band)", _sigma_label(noise), "token accuracy", series, markers=markers,
-                 hlines=[(0.99, "99 %"), (0.9, "90 %")], caption=provenance_caption(sweeps))
+                 hlines=[(level, level_percent(level)) for level in TOLERANCE_LEVELS[1:]], caption=provenance_caption(sweeps))
 
 
 def error_chart(sweeps: Sequence[SweepResult]) -> Chart:
@@ -68,7 +87,8 @@ def error_chart(sweeps: Sequence[SweepResult]) -> Chart:
     floor = min(0.5 / max(c.tokens, 1) for r in sweeps for c in r.curves)
     series = [Series(r.codec_name, r.sigmas, [max(1 - c.token_accuracy, floor) for c in r.curves]) for r in sweeps]
     return Chart(f"Token error rate, log scale ({noise} noise)", _sigma_label(noise), "1 − token accuracy", series, logy=True,
-                 hlines=[(1e-3, "0.1 % (99.9 % level)"), (1e-2, "1 %"), (0.1, "10 %")], caption=provenance_caption(sweeps) + f"; zero errors drawn at {floor:.1e}")
+                 hlines=[(1 - level, f"{(1 - level) * 100:g} %" + (f" ({level_percent(level)} level)" if i == 0 else ""))
+                         for i, level in enumerate(TOLERANCE_LEVELS)], caption=provenance_caption(sweeps) + f"; zero errors drawn at {floor:.1e}")
 
 
 def chunk_chart(sweeps: Sequence[SweepResult]) -> Chart:
@@ -78,30 +98,40 @@ def chunk_chart(sweeps: Sequence[SweepResult]) -> Chart:
 
 
 def _sigma_label(noise: str) -> str:
-    return {"data-scale": "σ relative to each dimension's RMS", "isotropic": "σ (absolute)", "posterior": "σ (in posterior std units)"}[noise]
+    return NOISE_MODELS[noise].axis_label
 
 
 def _tolerance_table_single(sweeps: Sequence[SweepResult]) -> str:
-    rows = ["<table><tr><th class=l>checkpoint</th><th>accuracy at σ=0</th><th>99.9 %</th><th>99 %</th><th>90 %</th><th>latent RMS</th><th class=l>noise</th></tr>"]
+    rows = ["<table><tr><th class=l rowspan=2>checkpoint</th><th rowspan=2>accuracy at σ=0</th>" + _level_groups()
+            + "<th rowspan=2>latent RMS</th><th class=l rowspan=2>noise</th></tr><tr>" + _level_heads() + "</tr>"]
     for r in sweeps:
-        acc0 = r.curves[0].token_accuracy if r.sigmas[0] == 0 else float("nan")
-        tols = "".join(f"<td>{_tol({'sigma': t.sigma, 'status': t.status})}</td>" for t in r.tolerances)
+        acc0 = r.accuracy_at_zero
+        tols = "".join(f"<td>{_tol(r.tolerance(level, kind))}</td>" for kind, level in _LEVELS)
         rows.append(f"<tr><td class=l>{escape(r.codec_name)}</td><td>{_pct(acc0)}</td>{tols}<td>{r.latent_rms:.4g}</td><td class=l>{r.settings.noise}</td></tr>")
     rows.append("</table>")
-    return "".join(rows)
+    return "".join(rows) + _tolerance_notes(sweeps)
+
+
+def _tolerance_notes(sweeps: Sequence[SweepResult]) -> str:
+    """What the special tolerance texts mean, and which tolerances the text is too short for."""
+    every = [t for r in sweeps for t in r.tolerances + r.loss_tolerances]
+    notes = status_notes(every, skip=[UNRESOLVABLE])  # each sweep's resolution note says it
+    notes += [f"{r.codec_name}: {note}" for r in sweeps
+              for note in [resolution_note(r.chunks.num_tokens, r.tolerances + r.loss_tolerances)] if note]
+    return "".join(f"<p class=muted>{escape(n)}</p>" for n in dict.fromkeys(notes))
 
 
 def _tolerance_table_comparison(comparison: Comparison) -> str:
-    head = ("<table><tr><th class=l rowspan=2>checkpoint</th><th rowspan=2>accuracy at σ=0</th><th rowspan=2>latent RMS</th>"
-            "<th colspan=3>absolute σ (isotropic)</th><th colspan=3>relative σ (data-scale)</th></tr>"
-            "<tr><th>99.9 %</th><th>99 %</th><th>90 %</th><th>99.9 %</th><th>99 %</th><th>90 %</th></tr>")
+    head = ("<table><tr><th class=l rowspan=3>checkpoint</th><th rowspan=3>accuracy at σ=0</th><th rowspan=3>latent RMS</th>"
+            + "".join(f"<th colspan={len(_LEVELS)}>{NOISE_MODELS[n].unit} ({n})</th>" for n in ("isotropic", "data-scale")) + "</tr>"
+            "<tr>" + _level_groups() * 2 + "</tr><tr>" + _level_heads() * 2 + "</tr>")
     rows = [head]
     for t in comparison.tolerances:
-        cells = "".join(f"<td>{_tol(x)}</td>" for x in t.absolute) + "".join(f"<td>{_tol(x)}</td>" for x in t.data_scale)
+        cells = "".join(f"<td>{_tol(x)}</td>" for x in t.absolute + t.absolute_loss + t.data_scale + t.data_scale_loss)
         rows.append(f"<tr><td class=l>{escape(t.name)}</td><td>{_pct(t.accuracy_at_zero)}</td><td>{t.latent_rms:.4g}</td>{cells}</tr>")
     rows.append("</table>")
     warning = f"<p class=warn>{escape(comparison.scale_warning)}</p>" if comparison.scale_warning else ""
-    return warning + "".join(rows)
+    return warning + "".join(rows) + _tolerance_notes(comparison.isotropic + comparison.data_scale)
 
 
 def _paired_sections(comparison: Comparison) -> list[Section]:
@@ -109,10 +139,10 @@ def _paired_sections(comparison: Comparison) -> list[Section]:
     for i, p in enumerate(comparison.paired):
         xs = [r.sigma for r in p.rows]
         diff = [r.difference for r in p.rows]
-        sig = [r.difference if r.pvalue < 0.05 else float("nan") for r in p.rows]
+        sig = [r.difference if r.pvalue < ALPHA else float("nan") for r in p.rows]
         chart = Chart(
             f"Accuracy difference {p.name_b} − {p.name_a} (per {p.unit})", _sigma_label(comparison.main_noise), "difference in accuracy",
-            [Series("difference", xs, diff), Series("p < 0.05 (McNemar)", xs, sig, color="#8a3b76", points=True)],
+            [Series("difference", xs, diff), Series(f"{SIGNIFICANT} (McNemar)", xs, sig, color="#8a3b76", points=True)],
             hlines=[(0.0, "no difference")], caption=provenance_caption(comparison.main_sweeps()),
         )
         out.append(Section(f"diff-{i}", f"Difference curve: {p.name_b} vs {p.name_a}", figure(chart), "plot"))
@@ -121,7 +151,7 @@ def _paired_sections(comparison: Comparison) -> list[Section]:
                 f"<table><tr><th>σ</th><th>{escape(p.name_a)}</th><th>{escape(p.name_b)}</th><th>difference</th><th>only {escape(p.name_a)} right</th>"
                 f"<th>only {escape(p.name_b)} right</th><th>statistic</th><th>p</th><th class=l>test</th></tr>"]
         for r in p.rows:
-            cls = " class=sig" if r.pvalue < 0.05 else ""
+            cls = " class=sig" if r.pvalue < ALPHA else ""
             rows.append(f"<tr><td>{r.sigma:.4g}</td><td>{_pct(r.accuracy_a)}</td><td>{_pct(r.accuracy_b)}</td><td{cls}>{100 * r.difference:+.3f}</td>"
                         f"<td>{r.a_only}</td><td>{r.b_only}</td><td>{r.statistic:.4g}</td><td{cls}>{r.pvalue:.3g}</td><td class=l>{r.method}</td></tr>")
         rows.append("</table>")
@@ -149,14 +179,14 @@ def _fragile_section(sweeps: Sequence[SweepResult], top: int = 15) -> Section:
 def _trend_sections(points: Sequence[TrendPoint], noise: str) -> list[Section]:
     good = [p for p in sort_points(list(points)) if p.error is None and p.step is not None]
     series = []
-    for level in (0.999, 0.99, 0.9):
-        xs = [p.step for p in good if p.tolerances.get(level, {}).get("sigma") is not None]
-        ys = [p.tolerances[level]["sigma"] for p in good if p.tolerances.get(level, {}).get("sigma") is not None]
-        series.append(Series(f"{level * 100:g} % tolerance", xs, ys))
+    for kind, level in _LEVELS:
+        measured = [(p.step, t.sigma) for p in good for t in [p.tolerance(level, kind)] if t is not None and t.sigma is not None]
+        series.append(Series(f"σ at {level_name(level, kind)}", [m[0] for m in measured], [m[1] for m in measured]))
     chart = Chart(f"Tolerance through training ({noise} noise)", "training step", "σ", series)
-    rows = ["<table><tr><th class=l>checkpoint</th><th>step</th><th class=l>step from</th><th>accuracy at σ=0</th><th>99.9 %</th><th>99 %</th><th>90 %</th><th class=l>problem</th></tr>"]
+    rows = ["<table><tr><th class=l rowspan=2>checkpoint</th><th rowspan=2>step</th><th class=l rowspan=2>step from</th>"
+            "<th rowspan=2>accuracy at σ=0</th>" + _level_groups() + "<th class=l rowspan=2>problem</th></tr><tr>" + _level_heads() + "</tr>"]
     for p in sort_points(list(points)):
-        tols = "".join(f"<td>{_tol(p.tolerances[level]) if level in p.tolerances else '—'}</td>" for level in (0.999, 0.99, 0.9))
+        tols = "".join(f"<td>{_tol(p.tolerance(level, kind))}</td>" for kind, level in _LEVELS)
         rows.append(f"<tr><td class=l>{escape(p.name)}</td><td>{'' if p.step is None else p.step}</td><td class=l>{p.step_source}</td>"
                     f"<td>{_pct(p.accuracy_at_zero)}</td>{tols}<td class=l>{escape(p.error or '')}</td></tr>")
     rows.append("</table>")
@@ -186,7 +216,7 @@ def build_report(
     sweeps: Sequence[SweepResult] = (),
     comparison: Comparison | None = None,
     trend_points: Sequence[TrendPoint] = (),
-    trend_noise: str = "data-scale",
+    trend_noise: str = DEFAULT_NOISE,
     title: str = "chunkscope report",
 ) -> str:
     """The report's HTML. Give sweeps of one noise model, or a comparison, and/or training-run points."""

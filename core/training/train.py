@@ -170,7 +170,9 @@ def library_versions() -> dict[str, str]:
 
 
 def _tolerances_dict(result) -> dict[str, dict]:
-    return {f"{t.level:g}": {"sigma": t.sigma, "status": t.status} for t in result.tolerances}
+    from core.engine.tolerance import level_key
+
+    return {level_key(t.level): {"sigma": t.sigma, "status": t.status} for t in result.tolerances}
 
 
 def measure(codec: Codec, held_out_text: str, log: Log = print, sweep_tokens: int = SWEEP_TOKENS,
@@ -347,12 +349,17 @@ def card_table(folder: str | Path) -> str:
     """A Markdown table of what each checkpoint's card says it is and measured."""
     from core.codecs.checkpoint import load_codec
 
+    from core.engine.tolerance import TOLERANCE_LEVELS, level_key, level_percent, tolerance_text
+
     def tol(t: dict) -> str:
-        return "fails at 0" if t["sigma"] is None else f"{t['sigma']:.3g}" + ("+" if t["status"] == "above_grid" else "")
+        return tolerance_text(t, digits=3)
+
+    levels = " / ".join(level_percent(level).replace(" %", "") for level in TOLERANCE_LEVELS) + " %"
+    keys = [level_key(level) for level in TOLERANCE_LEVELS]
 
     rows = [
         "| model | training | latent / width / depth / embed | steps × batch | acc. σ=0 held-out | acc. σ=0 demo "
-        "| tolerance isotropic 99.9 / 99 / 90 % | tolerance data-scale 99.9 / 99 / 90 % | latent RMS | train time | file |",
+        f"| tolerance isotropic {levels} | tolerance data-scale {levels} | latent RMS | train time | file |",
         "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |",
     ]
     for path in sorted(Path(folder).glob("*.safetensors")):
@@ -363,8 +370,8 @@ def card_table(folder: str | Path) -> str:
                    f"{r['latent_dropout']:g}, input masking {r['token_mask_prob']:g}")
         else:
             how = "reconstruction only"
-        iso = " / ".join(tol(m["tolerance"]["isotropic"][k]) for k in ("0.999", "0.99", "0.9"))
-        ds = " / ".join(tol(m["tolerance"]["data-scale"][k]) for k in ("0.999", "0.99", "0.9"))
+        iso = " / ".join(tol(m["tolerance"]["isotropic"][k]) for k in keys)
+        ds = " / ".join(tol(m["tolerance"]["data-scale"][k]) for k in keys)
         rows.append(
             f"| `{path.stem}` | {how} | {r['latent_dim']} / {r['width']} / {r['depth']} / {r['embed_dim']} "
             f"| {c.card['steps_done']} × {r['batch_size']} | {100 * m['held_out']['token_accuracy_sigma0']:.3f} % "
