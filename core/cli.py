@@ -390,7 +390,7 @@ def cmd_report(args: argparse.Namespace) -> int:
             written = save_report_figures(sections, outputs.folder(figures, FIGURES_FOLDER), title=args.title)
     print(f"wrote {out} ({len(html) / 1024:.0f} KiB, self-contained)", file=sys.stderr)
     if figures is not None:
-        print(f"wrote {len(written)} figures as PDF into {figures}", file=sys.stderr)
+        print(f"wrote {len(written)} figure{'s' if len(written) != 1 else ''} as PDF into {figures}", file=sys.stderr)
     return 0
 
 

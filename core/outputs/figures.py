@@ -201,9 +201,18 @@ def _percent_axis(ax, axis: str) -> None:
 
 
 def _legend(fig, ax) -> None:
-    """The legend outside the frame, right of everything the axes draw (guide labels included)."""
+    """The legend outside the frame: right of everything the axes draw (guide labels included),
+    or below the plot in columns when its entries are many or long (the plot keeps its width)."""
     handles, labels = ax.get_legend_handles_labels()
-    if handles:
+    if not handles:
+        return
+    if len(labels) > 4 or max(len(label) for label in labels) > 30:
+        from matplotlib.transforms import ScaledTranslation
+
+        below = ax.transAxes + ScaledTranslation(0, -0.5, fig.dpi_scale_trans)  # under the tick labels and x label
+        ax.legend(handles, labels, loc="upper center", bbox_to_anchor=(0.5, 0.0), bbox_transform=below,
+                  ncols=min(3, len(labels)))
+    else:
         fig.legend(handles, labels, loc="outside right upper")
 
 
@@ -251,7 +260,7 @@ def line_plot(
                 ys_all += _finite(lo) + _finite(hi)
             ys_all += [y for _, y in pts]
             if not pts:
-                ax.plot([], [], color=color, label=f"{s.name} (nothing to draw)")
+                ax.plot([], [], color=color, label=f"{s.name} (none measured)")
                 continue
             xs, ys = zip(*pts)
             ax.plot(xs, ys, color=color, linewidth=1.7 if s.line else 0, linestyle="--" if s.dashed else "-",
@@ -365,7 +374,7 @@ def scatter(
                 ax.scatter(px, py, s=12, color=color, alpha=0.7, linewidths=0, label=f"{name} (n = {len(pts):,})", zorder=3)
                 every += list(px) + list(py)
             else:
-                ax.scatter([], [], color=color, label=f"{name} (nothing to draw)")
+                ax.scatter([], [], color=color, label=f"{name} (none measured)")
         if diagonal and every:
             lo, hi = min(every), max(every)
             if hi <= lo:
@@ -423,14 +432,17 @@ def save_figure(fig, path: str | Path, caption: str = "", dpi: int = 150) -> Pat
         raise ValueError(f"{path}: a figure is saved as .pdf, .png or .svg")
     with _style():
         note = None
-        if caption:
+        if caption:  # the figure's bottom label: the layout puts it below everything, legend included
             wrapped = "\n".join(textwrap.wrap(caption, int(fig.get_figwidth() * 15)))
-            note = fig.text(0.01, 0.0, wrapped, ha="left", va="top", fontsize=7, color=MUTED)
+            note = fig.supxlabel(wrapped, x=0.01, ha="left", fontsize=7, color=MUTED, linespacing=1.3)
+            note.set_visible(True)
+            note.set_in_layout(True)
         metadata = {"CreationDate": None} if fmt == "pdf" else {"Date": None} if fmt == "svg" else {}
         try:
             with open(path, "wb") as handle:
                 fig.savefig(handle, format=fmt, dpi=dpi, bbox_inches="tight", pad_inches=0.08, metadata=metadata)
         finally:
-            if note is not None:
-                note.remove()
+            if note is not None:  # the inline SVG shows the caption as HTML instead
+                note.set_visible(False)
+                note.set_in_layout(False)
     return path

@@ -151,12 +151,12 @@ def trend_figure(points: Sequence[TrendPoint], noise: str):
     for kind, level in _LEVELS:
         measured = [(p.step, t.sigma) for p in good for t in [p.tolerance(level, kind)] if t is not None and t.sigma is not None]
         index = (TOLERANCE_LEVELS if kind == ABSOLUTE else LOSS_LEVELS).index(level)
-        lines.append(Line(f"σ at {level_name(level, kind)}", [m[0] for m in measured], [m[1] for m in measured],
+        lines.append(Line(level_name(level, kind), [m[0] for m in measured], [m[1] for m in measured],
                           color=PALETTE[index], dashed=kind == LOSS))
     steps = [p.step for p in good]
     logx = bool(steps) and min(steps) > 0 and max(steps) / min(steps) >= 10
     return line_plot(f"Tolerance through training ({noise} noise)", "training step" + (" (log scale)" if logx else ""),
-                     _sigma_label(noise), lines, logx=logx)
+                     f"σ at the tolerance ({NOISE_MODELS[noise].unit})", lines, logx=logx, height=4.2)
 
 
 # ---- tables ------------------------------------------------------------------------------
