@@ -50,8 +50,8 @@ MUTED = "#6b727b"
 GRID = "#e3e6ea"
 FRAME = "#b9bec5"
 
-WIDTH = 7.6  # inches: 730 px at 96 dpi, inside the report's 980 px column with its margins
-HEIGHT = 3.5
+WIDTH = 9.0  # inches: 864 px at 96 dpi, inside the report's 980 px column with its margins
+HEIGHT = 3.8
 
 NAME_PATTERN = re.compile(r"^[a-z0-9]+(?:-[a-z0-9]+)*$")
 

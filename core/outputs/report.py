@@ -30,7 +30,7 @@ from core.engine.tolerance import (
     UNRESOLVABLE, status_notes, tolerance_text,
 )
 from core.outputs.files import result_folder
-from core.outputs.figures import PALETTE, Guide, Line, NamedFigure, ReportSection, line_plot, save_figure, svg_markup
+from core.outputs.figures import HEIGHT, PALETTE, Guide, Line, NamedFigure, ReportSection, line_plot, save_figure, svg_markup
 
 __all__ = ["ReportSection", "NamedFigure", "build_report", "report_sections", "render_report", "save_report_figures",
            "provenance_caption", "FIGURES_MARKER", "FIGURES_FOLDER"]
@@ -156,7 +156,7 @@ def trend_figure(points: Sequence[TrendPoint], noise: str):
     steps = [p.step for p in good]
     logx = bool(steps) and min(steps) > 0 and max(steps) / min(steps) >= 10
     return line_plot(f"Tolerance through training ({noise} noise)", "training step" + (" (log scale)" if logx else ""),
-                     f"σ at the tolerance ({NOISE_MODELS[noise].unit})", lines, logx=logx, height=4.2)
+                     f"σ at the tolerance ({NOISE_MODELS[noise].unit})", lines, logx=logx, height=HEIGHT + 0.7)  # room for the legend below
 
 
 # ---- tables ------------------------------------------------------------------------------
@@ -317,7 +317,8 @@ def report_sections(
         floor = zero_error_floor(main)
         sections.append(ReportSection("accuracy", "Token accuracy against noise", figures=_sweep_figures(main, kind)))
         sections.append(ReportSection("error-rate", "Error rate on a log axis", figures=[NamedFigure(
-            f"{kind}-error-rate-{subject}{noise}", error_figure(main, floor), caption + f"; zero errors drawn at {floor:.1e}")]))
+            f"{kind}-error-rate-{subject}{noise}", error_figure(main, floor),
+            caption + (f"; zero errors drawn at {floor:.1e}" if any(c.token_accuracy >= 1 for r in main for c in r.curves) else ""))]))
         sections.append(ReportSection("chunks", "Chunk exact match", figures=[NamedFigure(
             f"{kind}-chunk-match-{subject}{noise}", chunk_figure(main), caption)]))
     if comparison is not None:
