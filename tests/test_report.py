@@ -164,6 +164,7 @@ def test_scatter_diagonal_spans_the_points():
     fig = scatter("s", "measured", "predicted", {"a": ([0.1, 0.4, 0.9], [0.2, 0.3, 1.1])})
     diagonal = [line for line in fig.axes[0].lines if line.get_label() == "y = x"][0]
     assert list(diagonal.get_xdata()) == list(diagonal.get_ydata()) == [0.1, 1.1]
+    assert fig.axes[0].get_xlim() == fig.axes[0].get_ylim()  # one scale on both axes: y = x at 45 degrees
 
 
 def test_an_extra_section_is_rendered_in_order_before_the_provenance(lookup_codec):
@@ -260,3 +261,15 @@ def test_training_run_figure_reads_cleanly_and_its_table_keeps_statuses_on_one_l
     assert x0 < 100 and x1 > 6400 and ax.get_ylim()[0] < min(ys)  # no point on the frame
     html = render_report(sections)
     assert "<td class=t>fails at 0</td>" in html and "td.t,td.n{white-space:nowrap}" in html
+
+
+def test_log_axes_label_ticks_as_plain_numbers():
+    # common practice: one number style per axis; matplotlib's default log labels are
+    # mathtext powers ("$\mathdefault{10^{-1}}$") beside "2×10^-3" minor labels
+    fig = histogram("h", "σ", {"a": list(np.random.default_rng(1).lognormal(-1, 0.6, 300))}, logx=True)
+    texts = [t for t, _ in _texts(fig)]
+    assert not any("$" in t or "×" in t for t in texts)
+    assert "0.1" in texts and "1" in texts
+    fig = line_plot("e", "σ", "error", [Line("x", [0, 1], [0.002, 0.004])], logy=True, percent_y=True)
+    ticks = [t.get_text() for t in fig.axes[0].get_yticklabels(which="both") if t.get_text()]
+    assert ticks and all(t.endswith(" %") for t in ticks)

@@ -194,10 +194,31 @@ def _guide_label_positions(values: Sequence[float], lo: float, hi: float, log: b
     return out
 
 
-def _percent_axis(ax, axis: str) -> None:
+def _number(v: float, percent: bool) -> str:
+    text = f"{100 * v:.3g} %" if percent else f"{v:.3g}"
+    return text.replace("-", "−")
+
+
+def _plain_ticks(ax, axis: str, percent: bool = False) -> None:
+    """Tick labels as plain numbers ("0.1", "2", "10 %"), never "10^-1" mixed with "2×10^-3";
+    on a log axis spanning less than about a decade the 2 and 5 minor ticks are labelled too."""
+    import math as _m
+
     from matplotlib.ticker import FuncFormatter
 
-    getattr(ax, f"{axis}axis").set_major_formatter(FuncFormatter(lambda v, _pos: f"{100 * v:.3g} %".replace("-", "−")))
+    target = getattr(ax, f"{axis}axis")
+    target.set_major_formatter(FuncFormatter(lambda v, _pos: _number(v, percent)))
+    if target.get_scale() != "log":
+        return
+
+    def minor(v, _pos):
+        lo, hi = sorted(target.get_view_interval())
+        if lo <= 0 or _m.log10(hi / lo) > 1.6:
+            return ""
+        mantissa = round(v / 10 ** _m.floor(_m.log10(v) + 1e-9), 6)
+        return _number(v, percent) if mantissa in (2.0, 5.0) else ""
+
+    target.set_minor_formatter(FuncFormatter(minor))
 
 
 def _legend(fig, ax) -> None:
@@ -275,8 +296,10 @@ def line_plot(
             shown_x = ax.get_xlim()[0]
             ax.update_datalim([(shown_x, g.value) for g in hlines if not logy or g.value > 0], updatex=False)
             ax.autoscale_view(scalex=False)
-        if percent_y:
-            _percent_axis(ax, "y")
+        if percent_y or logy:
+            _plain_ticks(ax, "y", percent_y)
+        if logx:
+            _plain_ticks(ax, "x")
         lo, hi = ax.get_ylim()
         shown = [g for g in hlines if lo <= g.value <= hi and (not logy or g.value > 0)]
         for g in shown:
@@ -337,6 +360,8 @@ def histogram(
             if math.isfinite(g.value):
                 ax.axvline(g.value, color=g.color, linestyle=(0, (4, 3)), linewidth=1.0, label=g.label)
         ax.set_ylim(bottom=0)
+        if logx:
+            _plain_ticks(ax, "x")
         _legend(fig, ax)
         return fig
 
@@ -380,6 +405,14 @@ def scatter(
             if hi <= lo:
                 lo, hi = (lo / 2, lo * 2) if (logx or logy) else (lo - 0.5, hi + 0.5)
             ax.plot([lo, hi], [lo, hi], color=MUTED, linestyle=(0, (4, 3)), linewidth=1.0, label="y = x", zorder=2)
+            if logx == logy:  # one range on both axes: the diagonal is the diagonal
+                pad = (hi / lo) ** 0.04 if logx else (hi - lo) * 0.04
+                shown = (lo / pad, hi * pad) if logx else (lo - pad, hi + pad)
+                ax.set_xlim(*shown)
+                ax.set_ylim(*shown)
+        for axis, log in (("x", logx), ("y", logy)):
+            if log:
+                _plain_ticks(ax, axis)
         _legend(fig, ax)
         return fig
 
