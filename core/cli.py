@@ -192,17 +192,22 @@ def _already_exist(paths: list[Path]) -> ChunkscopeError:
 
 def _check_outputs(targets: list[Path], force: bool, recognise, folder: bool) -> None:
     """Before any work: each target is free or replaceable, and its folder can be written."""
+    _check_targets([(target, recognise, folder) for target in targets], force)
+
+
+def _check_targets(items: list[tuple[Path, object, bool]], force: bool) -> None:
+    """`_check_outputs` for outputs of several kinds: (target, recognise, folder) each."""
     from core.outputs.files import OutputExistsError, check_target, check_writable
 
     existing = []
-    for target in targets:
+    for target, recognise, folder in items:
         try:
             check_target(target, force, recognise, folder=folder)
         except OutputExistsError:
             existing.append(target)
     if existing:
         raise _already_exist(existing)
-    for target in targets:
+    for target, _, _ in items:
         check_writable(target)
 
 
@@ -396,20 +401,9 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 def _check_report_outputs(out: Path, figures: Path | None, force: bool) -> None:
     """Before any work: the HTML file and the figure folder are free or ours to replace with --force."""
-    from core.outputs.files import OutputExistsError, check_target, check_writable
     from core.outputs.report import FIGURES_FOLDER
 
-    targets = [(out, is_report_file, False)] + ([(figures, FIGURES_FOLDER, True)] if figures is not None else [])
-    existing = []
-    for target, recognise, folder in targets:
-        try:
-            check_target(target, force, recognise, folder=folder)
-        except OutputExistsError:
-            existing.append(target)
-    if existing:
-        raise _already_exist(existing)
-    for target, _, _ in targets:
-        check_writable(target)
+    _check_targets([(out, is_report_file, False)] + ([(figures, FIGURES_FOLDER, True)] if figures is not None else []), force)
 
 
 def cmd_train(args: argparse.Namespace) -> int:

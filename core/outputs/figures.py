@@ -95,10 +95,20 @@ def _style() -> Iterator[None]:
         yield
 
 
-def _new_figure(width: float = WIDTH, height: float = HEIGHT):
+def _new_axes(title: str, xlabel: str, ylabel: str, logx: bool, logy: bool, width: float, height: float):
+    """A figure of one titled, labelled axes (call inside `_style()`)."""
     from matplotlib.figure import Figure
 
-    return Figure(figsize=(width, height), layout="constrained")
+    fig = Figure(figsize=(width, height), layout="constrained")
+    ax = fig.add_subplot()
+    ax.set_title(title)
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    if logx:
+        ax.set_xscale("log")
+    if logy:
+        ax.set_yscale("log")
+    return fig, ax
 
 
 @dataclass
@@ -260,15 +270,7 @@ def line_plot(
     Vertical guides go in the legend with their label; horizontal ones are labelled
     beside the right edge of the frame, pushed apart so no two labels overlap."""
     with _style():
-        fig = _new_figure(width, height)
-        ax = fig.add_subplot()
-        ax.set_title(title)
-        ax.set_xlabel(xlabel)
-        ax.set_ylabel(ylabel)
-        if logx:
-            ax.set_xscale("log")
-        if logy:
-            ax.set_yscale("log")
+        fig, ax = _new_axes(title, xlabel, ylabel, logx, logy, width, height)
         ys_all: list[float] = []
         for i, s in enumerate(lines):
             color = s.color or PALETTE[i % len(PALETTE)]
@@ -330,16 +332,11 @@ def histogram(
     import numpy as np
 
     with _style():
-        fig = _new_figure(width, height)
-        ax = fig.add_subplot()
-        ax.set_title(title)
-        ax.set_xlabel(xlabel)
-        ax.set_ylabel("density" if density else ylabel)
+        fig, ax = _new_axes(title, xlabel, "density" if density else ylabel, logx, False, width, height)
         finite = {name: np.asarray(_finite(v)) for name, v in groups.items()}
         every = np.concatenate([v for v in finite.values()] or [np.zeros(0)])
         if logx:
             every = every[every > 0]
-            ax.set_xscale("log")
         edges = bins
         if isinstance(bins, int) and every.size:
             lo, hi = float(every.min()), float(every.max())
@@ -380,15 +377,7 @@ def scatter(
 ):
     """Points of several groups; `diagonal` draws y = x across the shared range (predicted vs measured)."""
     with _style():
-        fig = _new_figure(width, height)
-        ax = fig.add_subplot()
-        ax.set_title(title)
-        ax.set_xlabel(xlabel)
-        ax.set_ylabel(ylabel)
-        if logx:
-            ax.set_xscale("log")
-        if logy:
-            ax.set_yscale("log")
+        fig, ax = _new_axes(title, xlabel, ylabel, logx, logy, width, height)
         every: list[float] = []
         for i, (name, (xs, ys)) in enumerate(groups.items()):
             pts = [(float(x), float(y)) for x, y in zip(xs, ys) if math.isfinite(x) and math.isfinite(y)
