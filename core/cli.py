@@ -183,31 +183,32 @@ def print_tolerance_table(results, stream=None) -> None:
         print("absolute σ depends on each codec's latent scale: compare with the latent RMS, or sweep with --noise data-scale.", file=stream)
 
 
-def _already_exist(paths: list[Path]) -> ChunkscopeError:
+def _already_exist(paths: list[Path], options: str = "--out") -> ChunkscopeError:
     if len(paths) == 1:
-        return ChunkscopeError(f"{paths[0]} already exists; pass --force to replace it, or choose another --out.")
+        return ChunkscopeError(f"{paths[0]} already exists; pass --force to replace it, or choose another {options}.")
     listed = ", ".join(str(p) for p in paths[:-1]) + f" and {paths[-1]}"
-    return ChunkscopeError(f"{listed} already exist; pass --force to replace them, or choose another --out.")
+    return ChunkscopeError(f"{listed} already exist; pass --force to replace them, or choose another {options}.")
 
 
 def _check_outputs(targets: list[Path], force: bool, recognise, folder: bool) -> None:
     """Before any work: each target is free or replaceable, and its folder can be written."""
-    _check_targets([(target, recognise, folder) for target in targets], force)
+    _check_targets([(target, recognise, folder, "--out") for target in targets], force)
 
 
-def _check_targets(items: list[tuple[Path, object, bool]], force: bool) -> None:
-    """`_check_outputs` for outputs of several kinds: (target, recognise, folder) each."""
+def _check_targets(items: list[tuple[Path, object, bool, str]], force: bool) -> None:
+    """`_check_outputs` for outputs of several kinds: (target, recognise, folder, option naming it) each."""
     from core.outputs.files import OutputExistsError, check_target, check_writable
 
-    existing = []
-    for target, recognise, folder in items:
+    existing, options = [], []
+    for target, recognise, folder, option in items:
         try:
             check_target(target, force, recognise, folder=folder)
         except OutputExistsError:
             existing.append(target)
+            options += [option] if option not in options else []
     if existing:
-        raise _already_exist(existing)
-    for target, _, _ in items:
+        raise _already_exist(existing, " or ".join(options))
+    for target, _, _, _ in items:
         check_writable(target)
 
 
@@ -403,7 +404,8 @@ def _check_report_outputs(out: Path, figures: Path | None, force: bool) -> None:
     """Before any work: the HTML file and the figure folder are free or ours to replace with --force."""
     from core.outputs.report import FIGURES_FOLDER
 
-    _check_targets([(out, is_report_file, False)] + ([(figures, FIGURES_FOLDER, True)] if figures is not None else []), force)
+    _check_targets([(out, is_report_file, False, "--out")]
+                   + ([(figures, FIGURES_FOLDER, True, "--figures")] if figures is not None else []), force)
 
 
 def cmd_train(args: argparse.Namespace) -> int:

@@ -222,7 +222,9 @@ def test_report_figures_are_one_pdf_each_and_never_overwritten_without_force(che
     out.write_text("<!DOCTYPE html><p>old</p>", encoding="utf-8")
     capsys.readouterr()
     assert main(["report", str(a), "--text", str(text), "--out", str(tmp_path / "new.html"), "--figures", str(figures)] + ARGS) == 2
-    assert "already exists" in capsys.readouterr().err and {p.name: p.read_bytes() for p in figures.iterdir()} == before
+    err = capsys.readouterr().err
+    assert f"{figures} already exists" in err and "choose another --figures" in err
+    assert {p.name: p.read_bytes() for p in figures.iterdir()} == before
     assert not (tmp_path / "new.html").exists()  # refused before any work: neither output written
     assert main(["report", str(a), "--text", str(text), "--out", str(out), "--figures", str(figures), "--force"] + ARGS) == 0
     names = re.findall(r'<figure data-name="([^"]+)"', out.read_text(encoding="utf-8"))
