@@ -135,6 +135,9 @@ def test_a_flat_zero_series_gets_a_readable_span_and_fractions_run_0_to_1():
     fig = line_plot("diff", "σ", "points", [Line("d", [0, 0.5, 1], [0.0, 0.0, 0.0])], min_span=2.0)
     lo, hi = fig.axes[0].get_ylim()
     assert lo <= -1.0 and hi >= 1.0 and abs(lo + hi) < 1e-9
+    fig = line_plot("flat", "σ", "points", [Line("d", [0, 1], [0.0, 0.0])])
+    lo, hi = fig.axes[0].get_ylim()
+    assert lo <= -0.5 and hi >= 0.5  # no min_span: 1 around zero, not matplotlib's ±0.055
     fig = line_plot("chunks", "σ", "rate", [Line("c", [0, 1], [0.0, 0.0])], fraction_y=True)
     lo, hi = fig.axes[0].get_ylim()
     assert lo < 0 < 1 < hi and hi - lo < 1.1  # the whole 0..1 range, little margin

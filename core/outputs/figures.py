@@ -180,7 +180,8 @@ def _limits(values: Sequence[float], log: bool, fraction: bool, min_span: float 
             mid = math.sqrt(lo * hi)
             return (mid / math.sqrt(10), mid * math.sqrt(10))
         return None
-    span = min_span if min_span is not None else (abs(lo) * 0.1 or 1.0)
+    flat = hi - lo <= 1e-12 * max(1.0, abs(lo))
+    span = min_span if min_span is not None else (abs(lo) * 0.2 or 1.0) if flat else 0.0
     if hi - lo < span:
         mid = (lo + hi) / 2
         return (mid - span / 2, mid + span / 2)
@@ -266,7 +267,8 @@ def line_plot(
     """Lines with optional Wilson-style bands, points, and reference lines.
 
     `fraction_y`: the y values are fractions, drawn 0..1 (as percent with `percent_y`).
-    `min_span`: a flat series is drawn on at least this y span (else 10 % of its value).
+    `min_span`: the y axis spans at least this much; a flat series without it gets 20 % of its value
+    (or 1 around zero), never a span of rounding noise.
     Vertical guides go in the legend with their label; horizontal ones are labelled
     beside the right edge of the frame, pushed apart so no two labels overlap."""
     with _style():
