@@ -3,6 +3,7 @@
 import errno
 import json
 import os
+import select
 import shutil
 import struct
 import subprocess
@@ -145,7 +146,13 @@ def test_progress_bar_shows_on_a_terminal_that_reports_no_size():
             progress = TerminalProgress("sizeless", stream=stream, mininterval=0)
             for done in range(1, 21):
                 progress(done, 20)
-        written = os.read(master, 65536).decode("utf-8", "replace")
+        chunks = []  # a pty hands its output over in pieces: read until nothing more arrives
+        while select.select([master], [], [], 0.5)[0]:
+            piece = os.read(master, 65536)
+            if not piece:
+                break
+            chunks.append(piece)
+        written = b"".join(chunks).decode("utf-8", "replace")
     finally:
         os.close(master)
         os.close(slave)
