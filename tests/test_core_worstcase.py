@@ -258,3 +258,40 @@ def test_written_files(tokenizer, tmp_path):
     with pytest.raises(FileExistsError):
         result.write(out)
     result.write(out, force=True)
+
+
+def test_the_worstcase_command_end_to_end(tmp_path, capsys):
+    from core.cli import main
+
+    checkpoint = SAMPLES / "tolerant.safetensors"
+    if not checkpoint.exists():
+        pytest.skip("the sample checkpoints are not there")
+    text = tmp_path / "notes.txt"
+    text.write_text(demo_text()[2000:2600], encoding="utf-8")
+    out = tmp_path / "wc"
+    args = ["worstcase", str(checkpoint), "--text", str(text), "--out", str(out), "--seed", "2", "--quiet"]
+    assert main(args) == 0
+    printed = capsys.readouterr().out
+    rows = list(csv.DictReader(io.StringIO((out / "worst_case.csv").read_text(encoding="utf-8"))))
+    data = json.loads((out / "worst_case.json").read_text(encoding="utf-8"))
+    assert {"chunk", "radius", "relative_radius", "random_radius", "position", "from_token", "to_token"} <= set(rows[0])
+    assert data["summary"]["chunks"] == len(rows) and data["provenance"]["settings"]["seed"] == 2
+    assert data["provenance"]["codec"]["sha256"] and data["provenance"]["text"]["source"] == str(text)
+    assert f"{data['summary']['verified']} of {len(rows)} chunks verified" in printed
+    radius = np.array([float(r["radius"]) for r in rows])
+    assert np.all(radius > 0) and np.all(radius <= np.array([float(r["random_radius"]) for r in rows]))
+
+    assert main(args) == 2  # nothing replaced without --force
+    one_sentence(capsys.readouterr().err.strip().removeprefix("chunkscope: "), str(out), "--force")
+    assert main(args + ["--force"]) == 0
+    capsys.readouterr()
+
+    (tmp_path / "mine").mkdir()
+    (tmp_path / "mine" / "thesis.tex").write_text("mine", encoding="utf-8")
+    assert main(args[:4] + ["--out", str(tmp_path / "mine"), "--force", "--quiet"]) == 2
+    one_sentence(capsys.readouterr().err.strip().removeprefix("chunkscope: "), "mine", "never replaced")
+    assert (tmp_path / "mine" / "thesis.tex").read_text(encoding="utf-8") == "mine"
+
+    assert main(["worstcase", str(checkpoint), "--text", str(tmp_path / "missing.txt"), "--out", str(tmp_path / "x")]) == 2
+    one_sentence(capsys.readouterr().err.strip().removeprefix("chunkscope: "), "missing.txt")
+    assert not (tmp_path / "x").exists()
