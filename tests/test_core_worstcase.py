@@ -295,3 +295,21 @@ def test_the_worstcase_command_end_to_end(tmp_path, capsys):
     assert main(["worstcase", str(checkpoint), "--text", str(tmp_path / "missing.txt"), "--out", str(tmp_path / "x")]) == 2
     one_sentence(capsys.readouterr().err.strip().removeprefix("chunkscope: "), "missing.txt")
     assert not (tmp_path / "x").exists()
+
+
+def test_view_numbers(tokenizer):
+    from core.analyses.worstcase import fragile_chunks, radius_histogram, radius_levels
+
+    codec, chunks, encoded = linear_setup(tokenizer, tokens=399)
+    result = worst_case(codec, chunks, WorstCaseSettings(sigmas=(0.5, 1.0, 2.0)), encoded=encoded)
+    edges, worst, random = radius_histogram(result, relative=True, bins=12)
+    assert worst.sum() == result.verified.sum() and random.sum() == np.isfinite(result.random_relative_radius).sum()
+    assert np.all(np.diff(np.log(edges)) > 0) and np.allclose(np.diff(np.log(edges)), np.log(edges[1] / edges[0]))
+    levels, level_edges = radius_levels(result, levels=5)
+    assert len(levels) == chunks.num_tokens and levels.min() == 0 and levels.max() == 4
+    smallest = int(np.nanargmin(result.radius))
+    assert np.all(levels[smallest * 4 : smallest * 4 + 4] == 0)
+    per_chunk = levels[::4]
+    assert np.all(np.abs(np.bincount(per_chunk, minlength=5) - len(per_chunk) / 5) <= 1)  # equal shares (quantiles)
+    rows = fragile_chunks(result, 7)
+    assert [r.chunk for r in rows] == list(np.argsort(result.radius)[:7]) and rows[0].radius == np.nanmin(result.radius)

@@ -485,3 +485,65 @@ def worst_case(
         latent_rms=encoded.latent_rms, elapsed_s=elapsed,
         token_text=token_texts(codec.tokenizer, *used, vocab_size=codec.vocab_size), **out, **ints,
     )
+
+
+# ---- view-shaped numbers (the workbench and the report draw these) -----------------------------
+
+
+def radii(result: WorstCaseResult, relative: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """(worst-case, random) radii per chunk in one unit: relative (data-scale) or absolute."""
+    if relative:
+        return result.relative_radius, result.random_relative_radius
+    return result.radius, result.random_radius
+
+
+def log_edges(*values: np.ndarray, bins: int = 40) -> np.ndarray:
+    """Log-spaced bin edges covering every finite positive value given (one decade when there is none)."""
+    pooled = np.concatenate([np.asarray(v, dtype=np.float64).ravel() for v in values]) if values else np.zeros(0)
+    pooled = pooled[np.isfinite(pooled) & (pooled > 0)]
+    if not len(pooled):
+        return np.geomspace(0.1, 1.0, bins + 1)
+    lo, hi = float(pooled.min()), float(pooled.max())
+    if hi <= lo * 1.0001:
+        lo, hi = lo / 1.5, hi * 1.5
+    return np.geomspace(lo, hi * 1.0001, bins + 1)
+
+
+def radius_histogram(result: WorstCaseResult, relative: bool = False, bins: int = 40):
+    """(edges, worst-case counts, random counts) on shared log-spaced bins; failed / unbroken chunks left out."""
+    worst, random = radii(result, relative)
+    edges = log_edges(worst, random, bins=bins)
+    count = lambda v: np.histogram(v[np.isfinite(v)], bins=edges)[0]  # noqa: E731
+    return edges, count(worst), count(random)
+
+
+def radius_levels(result: WorstCaseResult, levels: int = 10, relative: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """Per token: the level (0 = most fragile … levels-1) of its chunk's worst-case radius among equal shares
+    of the chunks (quantiles), -1 where the search failed; and the level edges [levels + 1]."""
+    worst, _ = radii(result, relative)
+    finite = worst[np.isfinite(worst)]
+    edges = np.quantile(finite, np.linspace(0, 1, levels + 1)) if len(finite) else np.linspace(0, 1, levels + 1)
+    per_chunk = np.full(len(worst), -1, dtype=np.int64)
+    ok = np.isfinite(worst)
+    per_chunk[ok] = np.clip(np.searchsorted(edges, worst[ok], side="right") - 1, 0, levels - 1)
+    k = result.chunks.chunk_size
+    return np.repeat(per_chunk, k)[: result.chunks.num_tokens], edges
+
+
+@dataclass(frozen=True)
+class FragileChunk:
+    chunk: int
+    text: str
+    radius: float
+    relative_radius: float
+    random_radius: float
+    position: int
+    from_text: str
+    to_text: str
+
+
+def fragile_chunks(result: WorstCaseResult, count: int = 50) -> list[FragileChunk]:
+    """The chunks with the smallest worst-case radius, with what they flip to."""
+    return [FragileChunk(i, result.chunk_text(i), float(result.radius[i]), float(result.relative_radius[i]),
+                         float(result.random_radius[i]), int(result.position[i]), result.display(result.from_id[i]),
+                         result.display(result.to_id[i])) for i in result.fragile(count)]
