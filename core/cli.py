@@ -370,6 +370,8 @@ def cmd_report(args: argparse.Namespace) -> int:
 
     folders = [p for p in paths if is_result_folder(p)]
     files = [p for p in paths if not is_result_folder(p)]
+    if getattr(args, "worst_case", False) and not files:
+        raise ChunkscopeError("--worst-case searches checkpoints on the text, so give at least one checkpoint, not only result folders.")
     for folder in folders:
         if (folder / "compare.json").exists():
             comparison = read_comparison(folder)
@@ -377,8 +379,18 @@ def cmd_report(args: argparse.Namespace) -> int:
             sweeps.append(read_sweep(folder))
     if files or args.trend:
         text, source = _load_text_arg(args.text)
+    extra = []
     if files:
         codecs = open_checkpoints(files, args.adapter)
+        if getattr(args, "worst_case", False):
+            from core.analyses.worstcase import refuse_without_gradients, report_section, worst_case
+
+            for codec in codecs:  # before any work: a codec without gradients is refused at once
+                refuse_without_gradients(codec)
+            for codec in codecs:
+                chunks = chunk_text(text, codec, source)
+                progress = None if args.quiet else TerminalProgress(f"worst {codec.name[:10]:<10}")
+                extra.append(report_section(worst_case(codec, chunks, progress=progress, text_source=source)))
         if len(codecs) >= 2:
             comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"))
         else:
@@ -388,7 +400,8 @@ def cmd_report(args: argparse.Namespace) -> int:
         if not files:
             announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter))
         points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter))
-    sections = report_sections(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise)
+    sections = report_sections(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise,
+                               extra_sections=extra)
     html = render_report(sections, title=args.title)
     with Outputs(args.force) as outputs:  # the page and its figure folder appear together, or neither
         outputs.file(out, is_report_file).write_text(html, encoding="utf-8")
@@ -537,6 +550,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trend", metavar="FOLDER", help="also sweep a folder of training checkpoints")
     p.add_argument("--title", default="chunkscope report")
     p.add_argument("--out", default="report.html", help="the HTML file to write (default: report.html)")
+    p.add_argument("--worst-case", action="store_true", help="add a worst-case section per checkpoint (the smallest "
+                   "perturbation that changes each chunk, beside the random radius; not for ONNX codecs)")
     p.add_argument("--figures", metavar="DIR", help="also write every figure of the report as DIR/<name>.pdf (with DIR/figures.json naming each)")
     p.add_argument("--force", action="store_true", help="replace an existing report file (and figure folder)")
     p.set_defaults(func=cmd_report)

@@ -313,3 +313,26 @@ def test_view_numbers(tokenizer):
     assert np.all(np.abs(np.bincount(per_chunk, minlength=5) - len(per_chunk) / 5) <= 1)  # equal shares (quantiles)
     rows = fragile_chunks(result, 7)
     assert [r.chunk for r in rows] == list(np.argsort(result.radius)[:7]) and rows[0].radius == np.nanmin(result.radius)
+
+
+def test_report_gets_a_worst_case_section(tmp_path, capsys):
+    """Through the report's section API: the section comes before the provenance, with both figures and the
+    fragile chunks, and the summary's numbers are core's."""
+    from core.cli import main
+
+    checkpoint = SAMPLES / "tolerant.safetensors"
+    if not checkpoint.exists():
+        pytest.skip("the sample checkpoints are not there")
+    text = tmp_path / "notes.txt"
+    text.write_text(demo_text()[2000:2500], encoding="utf-8")
+    out = tmp_path / "r.html"
+    assert main(["report", str(checkpoint), "--text", str(text), "--out", str(out), "--worst-case", "--quiet",
+                 "--sigmas", "0,0.5,1,2", "--repeats", "1", "--figures", str(tmp_path / "figs")]) == 0
+    html = out.read_text(encoding="utf-8")
+    order = [html.index(k) for k in ('id="worst-case-tolerant"', 'data-name="worst-case-tolerant-radii"',
+                                     'data-name="worst-case-tolerant-scatter"', "Most fragile chunks", 'id="provenance"')]
+    assert order == sorted(order)
+    assert (tmp_path / "figs" / "worst-case-tolerant-scatter.pdf").is_file()
+    capsys.readouterr()
+    assert main(["report", str(tmp_path / "figs"), "--out", str(tmp_path / "x.html"), "--worst-case"]) == 2
+    one_sentence(capsys.readouterr().err.strip().removeprefix("chunkscope: "), "--worst-case", "checkpoint")

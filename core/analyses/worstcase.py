@@ -547,3 +547,54 @@ def fragile_chunks(result: WorstCaseResult, count: int = 50) -> list[FragileChun
     return [FragileChunk(i, result.chunk_text(i), float(result.radius[i]), float(result.relative_radius[i]),
                          float(result.random_radius[i]), int(result.position[i]), result.display(result.from_id[i]),
                          result.display(result.to_id[i])) for i in result.fragile(count)]
+
+
+def report_section(result: WorstCaseResult, fragile_rows: int = 15):
+    """The report's worst-case section (core.outputs.report's section API): summary, the radii against random
+    noise (histogram and per-chunk scatter with the diagonal, relative units), and the most fragile chunks."""
+    from html import escape
+
+    from core.outputs.figures import NamedFigure, ReportSection, histogram, scatter
+
+    s = result.summary()
+    codec = result.provenance["codec"]
+    name = codec["name"]
+    slug = "".join(c if c.isalnum() else "-" for c in name.lower()).strip("-") or "codec"
+    slug = "-".join(part for part in slug.split("-") if part)
+    caption = (f"{name} ({codec.get('sha256', '')[:10]}); text {result.chunks.text_sha256[:10]} "
+               f"({result.chunks.num_tokens:,} tokens); random radius: data-scale noise, seed {result.settings.seed}, "
+               f"{result.settings.repeats} repeats")
+
+    def num(x) -> str:
+        return "—" if x is None or (isinstance(x, float) and not math.isfinite(x)) else f"{x:.3g}"
+
+    rate = "—" if s["below_random_rate"] is None else f"{100 * s['below_random_rate']:.1f} %"
+    html = (
+        f"<p>Per chunk of the text, the smallest perturbation of its mean found that changes the decoded chunk "
+        f"(a gradient-guided search, a line search to the boundary, and a decode that verifies it), beside the noise "
+        f"norm at which a data-scale sweep with the same seed first breaks that chunk. {s['verified']:,} of "
+        f"{s['chunks']:,} chunks verified" + (f", {s['failed']:,} where the search found nothing" if s["failed"] else "")
+        + f". Median worst-case radius {num(s['relative_radius_median'])} relative ({num(s['radius_median'])} absolute; "
+        f"latent RMS {num(s['latent_rms'])}); median random radius {num(s['random_relative_radius_median'])} relative. "
+        f"The worst case is below the random radius for {s['below_random']:,} of {s['compared']:,} chunks ({rate}); "
+        f"median ratio {num(s['radius_over_random_median'])}.</p>"
+    )
+    figures = [
+        NamedFigure(f"worst-case-{slug}-radii", histogram(
+            f"{name}: radius of the nearest failure per chunk", "radius, relative (‖δ / r‖)",
+            {"worst case (verified)": result.relative_radius, "random noise (first break on the grid)": result.random_relative_radius},
+            bins=40, ylabel="chunks", logx=True), caption),
+        NamedFigure(f"worst-case-{slug}-scatter", scatter(
+            f"{name}: worst case against random noise, per chunk", "random radius, relative", "worst-case radius, relative",
+            {"chunks": (result.random_relative_radius, result.relative_radius)}, logx=True, logy=True), caption),
+    ]
+    rows = ["<table><tr><th>chunk</th><th class=l>text</th><th>radius</th><th>relative</th><th>random, relative</th>"
+            "<th class=l>flips</th></tr>"]
+    for row in fragile_chunks(result, fragile_rows):
+        rows.append(f"<tr><td>{row.chunk}</td><td class=l><code>{escape(row.text)}</code></td><td>{num(row.radius)}</td>"
+                    f"<td>{num(row.relative_radius)}</td><td>{num(float(result.random_relative_radius[row.chunk]))}</td>"
+                    f"<td class=l><code>{escape(row.from_text)}</code> → <code>{escape(row.to_text)}</code> "
+                    f"(position {row.position})</td></tr>")
+    rows.append("</table>")
+    after = "<h3>Most fragile chunks</h3>" + "".join(rows)
+    return ReportSection(f"worst-case-{slug}", f"Worst case: {name}", html=html, figures=figures, html_after=after)
