@@ -268,7 +268,8 @@ class _Search:
         forward[rows] += 1
         return self.codec.decode(z)
 
-    def run(self, mean, ref, mask):
+    def run(self, mean, mask):
+        """The search for chunks `mean` [n, D]; their reference (the mean's decode) comes from its first decode."""
         s = self.s
         n, dim = mean.shape
         forward = np.zeros(n, dtype=np.int64)
@@ -286,6 +287,8 @@ class _Search:
             forward[active.numpy()] += 1
             z = (mean[active] + grow * delta[active]).requires_grad_(True)
             logits = self.codec.decode_with_grad(z)
+            if iteration == 0:
+                ref = logits.detach().argmax(-1)
             diff = _margins(logits.detach(), ref[active], mask[active])
             low = diff.flatten(1).amin(1)
             if iteration == 0:
@@ -337,7 +340,7 @@ class _Search:
         rows = torch.nonzero(found).squeeze(1)
         h_lo = torch.where(lo == 0, h_zero, torch.full((n,), math.nan))  # NaN: no margin known at lo
         lo, hi = self._line_search(mean, ref, mask, delta, length, rows, lo, hi, h_lo, h_hi, forward)
-        return self._verify(mean, ref, mask, delta, length, rows, hi, forward, backward)
+        return ref, self._verify(mean, ref, mask, delta, length, rows, hi, forward, backward)
 
     def _line_search(self, mean, ref, mask, delta, length, rows, lo, hi, h_lo, h_hi, forward):
         tol = self.s.tolerance
@@ -457,9 +460,7 @@ def worst_case(
         stop = min(start + batch, n)
         mean = encoded.mean[start:stop].float()
         mask = chunks.mask(start, stop)
-        ref = codec.decode(mean).argmax(-1)
-        ints["forward_calls"][start:stop] += 1
-        d, verified, position, from_id, to_id, forward, backward = search.run(mean, ref, mask)
+        ref, (d, verified, position, from_id, to_id, forward, backward) = search.run(mean, mask)
         d_np = d.numpy()
         relative = torch.where(d == 0, torch.zeros_like(d), d / rms.unsqueeze(0)).norm(dim=1).numpy()
         out["radius"][start:stop] = np.where(verified, np.linalg.norm(d_np.astype(np.float64), axis=1), np.nan)
