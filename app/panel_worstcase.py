@@ -267,7 +267,7 @@ class WorstCasePanel(QWidget):
         both = np.isfinite(w) & np.isfinite(r) & (w > 0) & (r > 0)
         sc = self.scatter.getPlotItem()
         sc.setLabel("bottom", f"random radius, {self._unit()}")
-        sc.setLabel("left", "worst-case radius")
+        sc.setLabel("left", "worst-case radius, same units")
         if both.any():
             lo = float(min(w[both].min(), r[both].min())) / 1.3
             hi = float(max(w[both].max(), r[both].max())) * 1.3
