@@ -121,7 +121,7 @@ class Screenshot:
                 return self._fail(w.message.text() or "no checkpoint could be opened")
             if any(e.codec is None or not e.ready or e.health is None for e in entries):
                 return
-            if self.view in ("sweep", "latent"):  # a variational codec fills these views best
+            if self.view in ("sweep", "latent", "worstcase"):  # a variational codec fills these views best
                 variational = [e for e in entries if e.codec.variational]
                 if variational:
                     wb.select(variational[0].path)
@@ -133,6 +133,9 @@ class Screenshot:
                 w.compare.restore({"start": 0.02, "stop": 2.0, "points": 8, "spacing": "log", "zero": True, "repeats": 1})
                 if not w.compare.run():
                     return self._fail(w.message.text() or "the comparison did not start")
+            elif self.view == "worstcase":
+                if not w.panels["worstcase"].run():
+                    return self._fail(w.message.text() or "the worst-case search did not start")
             elif self.view == "trend":  # the sample models' folder stands in for a training run
                 from app.state import samples_folder
 
@@ -151,6 +154,9 @@ class Screenshot:
                     return
             elif self.view == "trend":
                 if w.trend.is_running() or not w.trend.points:
+                    return
+            elif self.view == "worstcase":
+                if w.panels["worstcase"].busy() or w.panels["worstcase"].result is None:
                     return
             elif entry.sweep is None:
                 return

@@ -21,6 +21,7 @@ from app.panel_models import ModelsPanel
 from app.panel_sweep import SweepPanel
 from app.panel_tokens import TokensPanel
 from app.panel_trend import TrendPanel
+from app.panel_worstcase import WorstCasePanel
 from app.state import Workbench, default_text_path, sample_paths
 from app.style import mono_font
 from app.workers import Runner
@@ -28,9 +29,9 @@ from core.errors import ChunkscopeError
 from core.engine.sweep import SweepResult
 from core.engine.text import text_sha256
 
-VIEWS = ("live", "sweep", "tokens", "latent", "compare", "trend")
+VIEWS = ("live", "sweep", "tokens", "latent", "compare", "trend", "worstcase")
 VIEW_TITLES = {"live": "Perturb live", "sweep": "Sweep", "tokens": "Token failures", "latent": "Latent space",
-               "compare": "Compare", "trend": "Training run"}
+               "compare": "Compare", "trend": "Training run", "worstcase": "Worst case"}
 MAX_RECENT = 10
 START_AFTER_SHOW_MS = 1000  # queued work starts at the latest this long after the window is shown
 TEXT_SUFFIXES = {".txt", ".md", ".text", ".rst", ".csv", ".json", ".py", ".html"}
@@ -133,7 +134,7 @@ class MainWindow(QMainWindow):
         self.tabs = QTabWidget()
         self.tabs.setDocumentMode(True)
         self.panels = {"live": self.live, "sweep": self.sweep, "tokens": self.tokens, "latent": self.latent,
-                       "compare": self.compare, "trend": self.trend}
+                       "compare": self.compare, "trend": self.trend, "worstcase": WorstCasePanel(self.workbench)}
         for name in VIEWS:
             self.tabs.addTab(self.panels[name], VIEW_TITLES[name])
 

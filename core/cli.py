@@ -370,6 +370,8 @@ def cmd_report(args: argparse.Namespace) -> int:
 
     folders = [p for p in paths if is_result_folder(p)]
     files = [p for p in paths if not is_result_folder(p)]
+    if getattr(args, "worst_case", False) and not files:
+        raise ChunkscopeError("--worst-case searches checkpoints on the text, so give at least one checkpoint, not only result folders.")
     for folder in folders:
         if (folder / "compare.json").exists():
             comparison = read_comparison(folder)
@@ -377,8 +379,18 @@ def cmd_report(args: argparse.Namespace) -> int:
             sweeps.append(read_sweep(folder))
     if files or args.trend:
         text, source = _load_text_arg(args.text)
+    extra = []
     if files:
         codecs = open_checkpoints(files, args.adapter)
+        if getattr(args, "worst_case", False):
+            from core.analyses.worstcase import refuse_without_gradients, report_section, worst_case
+
+            for codec in codecs:  # before any work: a codec without gradients is refused at once
+                refuse_without_gradients(codec)
+            for codec in codecs:
+                chunks = chunk_text(text, codec, source)
+                progress = None if args.quiet else TerminalProgress(f"worst {codec.name[:10]:<10}")
+                extra.append(report_section(worst_case(codec, chunks, progress=progress, text_source=source)))
         if len(codecs) >= 2:
             comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"))
         else:
@@ -388,7 +400,8 @@ def cmd_report(args: argparse.Namespace) -> int:
         if not files:
             announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter))
         points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter))
-    sections = report_sections(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise)
+    sections = report_sections(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise,
+                               extra_sections=extra)
     html = render_report(sections, title=args.title)
     with Outputs(args.force) as outputs:  # the page and its figure folder appear together, or neither
         outputs.file(out, is_report_file).write_text(html, encoding="utf-8")
@@ -397,6 +410,58 @@ def cmd_report(args: argparse.Namespace) -> int:
     print(f"wrote {out} ({len(html) / 1024:.0f} KiB, self-contained)", file=sys.stderr)
     if figures is not None:
         print(f"wrote {len(written)} figure{'s' if len(written) != 1 else ''} as PDF into {figures}", file=sys.stderr)
+    return 0
+
+
+def print_worst_case(result, stream=None) -> None:
+    """The worst-case summary: radii beside the random radius, failures, calls per chunk."""
+    stream = stream or sys.stdout
+    s = result.summary()
+
+    def num(x) -> str:
+        return "—" if x is None else f"{x:.4g}"
+
+    print(f"worst case on {result.provenance['codec']['name']}: {s['verified']:,} of {s['chunks']:,} chunks verified"
+          + (f", {s['failed']:,} where the search found no breaking perturbation" if s["failed"] else ""), file=stream)
+    print(f"  median radius         {num(s['radius_median'])} absolute, {num(s['relative_radius_median'])} relative "
+          f"(smallest {num(s['radius_min'])}; latent RMS {num(s['latent_rms'])})", file=stream)
+    print(f"  median random radius  {num(s['random_radius_median'])} absolute, {num(s['random_relative_radius_median'])} "
+          f"relative ({s['broke_on_grid']:,} chunks broke on the data-scale grid)", file=stream)
+    if s["compared"]:
+        print(f"  worst case below random for {s['below_random']:,} of {s['compared']:,} chunks "
+              f"({100 * s['below_random_rate']:.1f} %); median ratio {num(s['radius_over_random_median'])}", file=stream)
+    print(f"  decoder calls per chunk {s['calls_per_chunk']:.1f} (forward {s['forward_calls_per_chunk']:.1f}, backward "
+          f"{s['backward_calls_per_chunk']:.1f}), plus {s['random_calls_per_chunk']:.1f} for the random radius; "
+          f"{s['elapsed_s']:.1f} s", file=stream)
+    fragile = result.fragile(5)
+    if fragile:
+        print("  most fragile chunks:", file=stream)
+        for i in fragile:
+            print(f"    #{i:<6} {result.radius[i]:<9.4g} {result.chunk_text(i)!r}: {result.display(result.from_id[i])!r} → "
+                  f"{result.display(result.to_id[i])!r} at position {result.position[i]}", file=stream)
+
+
+def cmd_worstcase(args: argparse.Namespace) -> int:
+    from core.analyses.worstcase import WORST_CASE_FOLDER, WorstCaseSettings, refuse_without_gradients, worst_case
+    from core.engine.sweep import DEFAULT_SIGMAS, parse_sigmas
+    from core.engine.text import chunk_text
+    from core.outputs.files import OutputRefusedError
+
+    settings = WorstCaseSettings(seed=args.seed, repeats=args.repeats,
+                                 sigmas=parse_sigmas(args.sigmas) if args.sigmas else DEFAULT_SIGMAS).validated()
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        raise OutputRefusedError(f"{out} is a file, and worst-case results go into a folder; choose another --out.")
+    _check_outputs([out], args.force, WORST_CASE_FOLDER, folder=True)
+    text, source = _load_text_arg(args.text)
+    (codec,) = open_checkpoints([args.checkpoint], args.adapter)
+    refuse_without_gradients(codec)
+    chunks = chunk_text(text, codec, source)
+    progress = None if args.quiet else TerminalProgress(f"{codec.name[:16]:<16}")
+    result = worst_case(codec, chunks, settings, progress=progress, text_source=source)
+    result.write(out, force=args.force)
+    print(f"wrote {out}/ (worst_case.json, worst_case.csv)", file=sys.stderr)
+    print_worst_case(result)
     return 0
 
 
@@ -429,6 +494,7 @@ def add_sweep_arguments(p: argparse.ArgumentParser, noise_choices=None) -> None:
 
 def build_parser() -> argparse.ArgumentParser:
     from core.analyses.compare import COMPARISON_NOISES
+    from core.engine.sweep import DEFAULT_REPEATS, DEFAULT_SEED
 
     parser = argparse.ArgumentParser(
         prog="chunkscope",
@@ -484,9 +550,27 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trend", metavar="FOLDER", help="also sweep a folder of training checkpoints")
     p.add_argument("--title", default="chunkscope report")
     p.add_argument("--out", default="report.html", help="the HTML file to write (default: report.html)")
+    p.add_argument("--worst-case", action="store_true", help="add a worst-case section per checkpoint (the smallest "
+                   "perturbation that changes each chunk, beside the random radius; not for ONNX codecs)")
     p.add_argument("--figures", metavar="DIR", help="also write every figure of the report as DIR/<name>.pdf (with DIR/figures.json naming each)")
     p.add_argument("--force", action="store_true", help="replace an existing report file (and figure folder)")
     p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("worstcase", help="the smallest latent perturbation that changes each chunk",
+                       description="Per chunk, search for the smallest perturbation of its mean that changes the decoded "
+                                   "chunk (following gradients through the decoder; not for ONNX codecs), verify it, and set "
+                                   "it beside the noise norm at which a data-scale sweep with the same seed first breaks the "
+                                   "chunk; write DIR/worst_case.json and DIR/worst_case.csv.")
+    p.add_argument("checkpoint")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
+    p.add_argument("--text", help="UTF-8 text file to evaluate on (default: the bundled demo text)")
+    p.add_argument("--out", default="worst_case", help="output folder (default: worst_case)")
+    p.add_argument("--seed", type=int, default=DEFAULT_SEED, help=f"noise seed of the random radius (default {DEFAULT_SEED})")
+    p.add_argument("--repeats", type=int, default=DEFAULT_REPEATS, help=f"noise draws per chunk for the random radius (default {DEFAULT_REPEATS})")
+    p.add_argument("--sigmas", help="data-scale grid of the random radius (default: the sweep's)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_worstcase)
     return parser
 
 
