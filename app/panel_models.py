@@ -212,6 +212,7 @@ class EntryRow(QWidget):
 
 class ModelsPanel(QWidget):
     open_requested = Signal()
+    open_adapter_requested = Signal()  # open a checkpoint through the user's Python adapter
 
     def __init__(self, workbench: Workbench):
         super().__init__()
@@ -225,9 +226,15 @@ class ModelsPanel(QWidget):
         head.addWidget(label)
         head.addStretch(1)
         self.open_button = QPushButton("Open…")
-        self.open_button.setToolTip("Open a checkpoint (.safetensors); you can also drop files on the window")
+        self.open_button.setToolTip("Open a checkpoint (.safetensors) or an ONNX codec's codec.json; you can also drop "
+                                    "files and ONNX codec folders on the window")
         self.open_button.clicked.connect(self.open_requested)
         head.addWidget(self.open_button)
+        self.adapter_button = QPushButton("With adapter…")
+        self.adapter_button.setToolTip("Open your own model's checkpoint (a file or a folder) through a Python adapter "
+                                       "file; this runs the code in that file, and you are asked before it first runs")
+        self.adapter_button.clicked.connect(self.open_adapter_requested)
+        head.addWidget(self.adapter_button)
         layout.addLayout(head)
 
         self.list = QListWidget()

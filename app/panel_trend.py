@@ -5,7 +5,7 @@ one-sentence problem and the rest are still measured (core.analyses.trend)."""
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 import pyqtgraph as pg
@@ -21,6 +21,7 @@ from app.controls import GridControls, caption, card, page_layout, run_controls
 from app.export import add_export_menu
 from app.style import LEVEL_PEN_STYLES, LEVEL_SYMBOLS, PALETTE, fmt_percent, legend, pen, plot_widget
 from app.workers import LatestTask, Runner, Task
+from core.codecs.checkpoint import file_sha256
 from core.errors import ChunkscopeError
 from core.engine.noise import sigma_unit
 from core.engine.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED, SweepSettings
@@ -53,9 +54,14 @@ class _Cell(QTableWidgetItem):
         return self.text() < other.text()
 
 
-def _trend(task: Task, folder: str, text: str, settings: SweepSettings, source: str) -> list[TrendPoint]:
+def _trend(task: Task, folder: str, text: str, settings: SweepSettings, source: str, adapter: str = "",
+           adapter_sha: str = "") -> list[TrendPoint]:
+    if adapter and adapter_sha and Path(adapter).is_file() and file_sha256(adapter) != adapter_sha:
+        raise ChunkscopeError(f"The adapter {adapter} changed after you allowed it to run; choose it again to be asked "
+                              "about the new file.")
     points = []
-    for point in trend(folder, text, settings, text_source=source, should_stop=task.should_stop, progress=task.report):
+    for point in trend(folder, text, settings, text_source=source, should_stop=task.should_stop, progress=task.report,
+                       adapter=adapter or None):
         points.append(point)
         task.partial.emit(point)
     return points
@@ -79,6 +85,9 @@ class TrendPanel(QWidget):
         self.text = ""
         self.text_source = ""
         self.folder = ""
+        self.adapter = ""  # the adapter that opens the run's checkpoints ("" for built-in and ONNX)
+        # asks the user before an adapter's code runs; returns its sha256, or "" (the window sets it)
+        self.adapter_allowed: Callable[[str], str] | None = None
         self.points: list[TrendPoint] = []
         self.settings_used: SweepSettings | None = None
         self.runs = LatestTask(self.runner, self)
@@ -110,7 +119,8 @@ class TrendPanel(QWidget):
         row = g.layout()  # one row; the run controls follow the grid's
         row.addSpacing(10)
         self.run_button, self.cancel_button, self.progress = run_controls(
-            "Measure run", lambda: self.run_folder(self.folder) if self.folder else self.choose_folder(), self.cancel)
+            "Measure run", lambda: self.run_folder(self.folder, self.adapter) if self.folder else self.choose_folder(),
+            self.cancel)
         row.addWidget(self.run_button)
         row.addWidget(self.cancel_button)
         row.addWidget(self.progress, 1)
@@ -186,27 +196,36 @@ class TrendPanel(QWidget):
     def is_running(self) -> bool:
         return self.runs.running()
 
-    def run_folder(self, path: str | Path) -> bool:
-        """Measure every checkpoint in `path`; a running measurement is superseded."""
+    def run_folder(self, path: str | Path, adapter: str | None = None) -> bool:
+        """Measure every checkpoint in `path` (through `adapter` when given, once the user allowed
+        its code to run); a running measurement is superseded."""
         folder = str(path)
+        adapter = adapter or ""
         try:
             settings = self.sweep_settings()
-            checkpoints = checkpoints_in(folder)
+            checkpoints = checkpoints_in(folder, adapter or None)
         except ChunkscopeError as exc:
             self.error.emit(str(exc))
             return False
+        adapter_sha = ""
+        if adapter:
+            adapter_sha = self.adapter_allowed(adapter) if self.adapter_allowed is not None else ""
+            if not adapter_sha:
+                return False
         if not self.text:
             try:
                 self.text, self.text_source = demo_text(), "demo_text.txt"
             except ChunkscopeError as exc:
                 self.error.emit(str(exc))
                 return False
-        self.folder = folder
+        self.folder, self.adapter = folder, adapter
         self.settings_used = settings
         self.points = []
-        self.folder_label.setText(f"{folder}  ·  {len(checkpoints)} checkpoints")
-        self.folder_label.setToolTip(folder)
-        task = Task("the training-run trend", _trend, folder, self.text, settings, self.text_source)
+        through = f"  ·  adapter {Path(adapter).name}" if adapter else ""
+        self.folder_label.setText(f"{folder}  ·  {len(checkpoints)} checkpoints{through}")
+        self.folder_label.setToolTip(folder + (f"\nopened by the adapter {adapter}" if adapter else ""))
+        task = Task("the training-run trend", _trend, folder, self.text, settings, self.text_source, adapter,
+                    adapter_sha if not adapter_sha.startswith("entry point") else "")
         self.runs.start(task, progress=self._progress, partial=self._point, finished=self._finished,
                         failed=self._failed, cancelled=self._cancelled)
         self._expected = len(checkpoints)
@@ -260,12 +279,14 @@ class TrendPanel(QWidget):
 
     # ---- showing -------------------------------------------------------------------------
 
-    def set_points(self, points: Sequence[TrendPoint], folder: str = "", settings: SweepSettings | None = None) -> None:
+    def set_points(self, points: Sequence[TrendPoint], folder: str = "", settings: SweepSettings | None = None,
+                   adapter: str = "") -> None:
         """Show saved points (a reopened workspace) without measuring anything."""
         if self.runs.drop():
             self._over()
         self.points = list(points)
-        self.folder = folder or self.folder
+        if folder:
+            self.folder, self.adapter = folder, adapter  # measuring again asks before the adapter runs
         self.settings_used = settings
         if folder:
             self.folder_label.setText(folder)

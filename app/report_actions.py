@@ -48,10 +48,23 @@ def make_workspace(codecs: Sequence = (), text: str = "", text_source: str = "",
                    trend_points: Sequence[TrendPoint] = (), trend_folder: str = "") -> Workspace:
     """A Workspace from what the window holds; checkpoints are referenced by path and sha256."""
     return Workspace(
-        checkpoints=[{"path": str(c.path), "sha256": c.sha256, "name": c.name} for c in codecs if getattr(c, "path", "")],
+        checkpoints=[_checkpoint_record(c) for c in codecs if getattr(c, "path", "")],
         text=text, text_source=text_source, settings=dict(settings or {}), sweeps=dict(sweeps or {}),
         comparison=comparison, trend_points=list(trend_points), trend_folder=trend_folder,
     )
+
+
+def _checkpoint_record(codec) -> dict[str, str]:
+    """Path, sha256 and name; how it was opened; for an adapter, the adapter file and its sha256
+    (reopening asks again before that code runs, unless the user allowed that exact hash)."""
+    record = {"path": str(codec.path), "sha256": codec.sha256, "name": codec.name}
+    source = getattr(codec, "source", None)
+    if source is not None:
+        record["opened_as"] = source.opened_as
+        if source.adapter:
+            record["adapter"] = source.adapter
+            record["adapter_sha256"] = source.adapter_sha256
+    return record
 
 
 def save_workspace_file(workspace: Workspace, path: str | Path, force: bool = False) -> Path:

@@ -10,9 +10,11 @@ from pathlib import Path
 
 from PySide6.QtCore import QObject, Signal
 
-from core.codecs.checkpoint import CheckpointInfo, load_codec, read_checkpoint_info
+from core.codecs.checkpoint import CheckpointInfo, file_sha256, read_checkpoint_info
 from core.codecs.contract import OpenedCodec
-from core.errors import CheckpointError, TextError
+from core.codecs.onnx import MANIFEST, is_onnx_codec
+from core.codecs.open import open_codec
+from core.errors import CheckpointError, ChunkscopeError, TextError
 from core.engine.health import LatentHealth, latent_health
 from core.engine.noise import Encoded, encode_chunks
 from core.engine.sweep import SweepResult, SweepSettings, run_sweep
@@ -48,6 +50,8 @@ class Entry:
     codec: OpenedCodec | None = None
     info: CheckpointInfo | None = None  # the header, read at once when opened (the weights load in a task)
     error: str = ""
+    adapter: str = ""  # the adapter file the user allowed to open this checkpoint ("" when none)
+    adapter_sha256: str = ""  # its sha256 when allowed: the worker refuses a file changed since
     text_sha: str = ""
     chunks: Chunks | None = None
     encoded: Encoded | None = None
@@ -64,8 +68,11 @@ class Entry:
         return self.codec is not None and self.encoded is not None
 
 
-def _load_and_encode(task: Task, path: str, text: str, source: str):
-    codec = load_codec(path)
+def _load_and_encode(task: Task, path: str, text: str, source: str, adapter: str = "", adapter_sha: str = ""):
+    if adapter and adapter_sha and Path(adapter).is_file() and file_sha256(adapter) != adapter_sha:
+        raise ChunkscopeError(f"The adapter {adapter} changed after you allowed it to run; open the checkpoint with it "
+                              "again to be asked about the new file.")
+    codec = open_codec(path, adapter or None)
     if task.should_stop():
         return None
     chunks = chunk_text(text, codec, source)
@@ -138,21 +145,27 @@ class Workbench(QObject):
 
     # ---- checkpoints ---------------------------------------------------------------------
 
-    def open_checkpoint(self, path: str | os.PathLike, select: bool = True) -> None:
-        path = str(Path(path).resolve())
-        if path in self.entries and self.entries[path].codec is not None:
+    def open_checkpoint(self, path: str | os.PathLike, select: bool = True, adapter: str = "", adapter_sha256: str = "") -> None:
+        """Open a built-in checkpoint or an ONNX codec folder (or its codec.json); with `adapter`,
+        through that adapter, whose code the caller made sure the user allowed to run."""
+        path = self.checkpoint_key(path)
+        if path in self.entries and self.entries[path].codec is not None and self.entries[path].adapter == adapter:
             if select:
                 self.select(path)
             return
         entry = self.entries.get(path) or Entry(path=path)
         entry.error = ""
-        try:
-            entry.info = read_checkpoint_info(path)
-        except CheckpointError:
-            entry.info = None  # the loading task says what is wrong, in the same words
+        entry.adapter, entry.adapter_sha256 = adapter, adapter_sha256
+        entry.codec = None
+        entry.info = None  # the loading task says what is wrong, in the same words
+        if not adapter and not is_onnx_codec(path):
+            try:
+                entry.info = read_checkpoint_info(path)
+            except CheckpointError:
+                pass
         self.entries[path] = entry
         entry.busy.add("load")
-        task = Task(f"opening {Path(path).name}", _load_and_encode, path, self.text, self.text_source)
+        task = Task(f"opening {Path(path).name}", _load_and_encode, path, self.text, self.text_source, adapter, adapter_sha256)
         sha = self.text_sha
         task.finished.connect(lambda result, p=path, s=sha: self._loaded(p, s, result))
         task.failed.connect(lambda message, p=path: self._load_failed(p, message))
@@ -161,6 +174,14 @@ class Workbench(QObject):
             self.current = path
             self.current_changed.emit(path)
         self.runner.start(task)
+
+    @staticmethod
+    def checkpoint_key(path: str | os.PathLike) -> str:
+        """The entry's path: resolved, and an ONNX codec's folder rather than its codec.json."""
+        resolved = Path(path).resolve()
+        if resolved.name == MANIFEST and resolved.is_file():
+            resolved = resolved.parent
+        return str(resolved)
 
     def _loaded(self, path: str, sha: str, result) -> None:
         entry = self.entries.get(path)

@@ -12,7 +12,7 @@ from PySide6.QtWidgets import (
     QPushButton, QSplitter, QTabWidget, QVBoxLayout, QWidget,
 )
 
-from app import report_actions
+from app import adapters, report_actions
 from app.messages import error_text
 from app.panel_compare import ComparePanel
 from app.panel_latent import LatentPanel
@@ -25,6 +25,7 @@ from app.panel_worstcase import WorstCasePanel
 from app.state import Workbench, default_text_path, sample_paths
 from app.style import mono_font
 from app.workers import Runner
+from core.codecs.onnx import MANIFEST, is_onnx_codec
 from core.errors import ChunkscopeError
 from core.engine.sweep import SweepResult
 from core.engine.text import text_sha256
@@ -110,6 +111,7 @@ class MainWindow(QMainWindow):
 
         self.models = ModelsPanel(self.workbench)
         self.models.open_requested.connect(self.open_checkpoint_dialog)
+        self.models.open_adapter_requested.connect(self.open_with_adapter_dialog)
         self.live = LivePanel(self.workbench)
         self.sweep = SweepPanel(self.workbench)
         self.tokens = TokensPanel(self.workbench)
@@ -122,6 +124,7 @@ class MainWindow(QMainWindow):
         self.compare.comparison_ready.connect(
             lambda c: self.statusBar().showMessage(f"comparison of {', '.join(c.names)} finished", 6000))
         self.trend = TrendPanel(self.runner)
+        self.trend.adapter_allowed = self.adapter_allowed
         self.trend.error.connect(self.show_error)
         self.trend.finished.connect(
             lambda points: self.statusBar().showMessage(f"training run measured: {len(points)} checkpoints", 6000))
@@ -177,6 +180,13 @@ class MainWindow(QMainWindow):
         action.setShortcut(QKeySequence.StandardKey.Open)
         action.triggered.connect(self.open_checkpoint_dialog)
         file_menu.addAction(action)
+        action = QAction("Open checkpoint with adapter…", self)
+        action.setToolTip(adapters.RUNS_CODE)
+        action.triggered.connect(self.open_with_adapter_dialog)
+        file_menu.addAction(action)
+        action = QAction("Open ONNX codec folder…", self)
+        action.triggered.connect(self.open_onnx_dialog)
+        file_menu.addAction(action)
         self.recent_menu = file_menu.addMenu("Open recent")
         file_menu.addSeparator()
         action = QAction("Open text file…", self)
@@ -191,6 +201,9 @@ class MainWindow(QMainWindow):
         file_menu.addSeparator()
         action = QAction("Open training run folder…", self)
         action.triggered.connect(self.trend.choose_folder)
+        file_menu.addAction(action)
+        action = QAction("Open training run with adapter…", self)
+        action.triggered.connect(self.open_run_with_adapter_dialog)
         file_menu.addAction(action)
         action = QAction("Open sweep results folder…", self)
         action.triggered.connect(self.open_sweep_folder_dialog)
@@ -265,15 +278,62 @@ class MainWindow(QMainWindow):
             self.workbench.open_checkpoint(path, select=(i == 0))
 
     def open_checkpoint(self, path: str) -> None:
-        """Open a checkpoint the user chose; it enters Recent files once its weights have loaded."""
+        """Open a checkpoint (or an ONNX codec folder) the user chose; it enters Recent files once
+        its weights have loaded. No adapter: code lying next to a checkpoint is never run."""
         self.message.hide()
-        resolved = str(Path(path).resolve())
+        resolved = self.workbench.checkpoint_key(path)
         self.workbench.open_checkpoint(path)
         entry = self.workbench.entries.get(resolved)
         if entry is not None and entry.codec is not None:  # it was open already
             self._remember(resolved)
         else:
             self._opening.add(resolved)
+
+    def adapter_allowed(self, adapter: str) -> str:
+        """The adapter's sha256 once the user allowed its code to run (asked before the first use of
+        each file, remembered for that hash); "" if not allowed or unusable (said in the bar)."""
+        try:
+            return adapters.allowed(self, self.settings, adapter)
+        except (ChunkscopeError, OSError) as exc:
+            self.show_error(error_text(exc, adapter, "read"))
+            return ""
+
+    def open_with_adapter(self, checkpoint: str, adapter: str, select: bool = True) -> bool:
+        """Open `checkpoint` through the user's adapter, after asking (see `adapter_allowed`);
+        the adapter runs in a worker and its failure is core's sentence in the message bar."""
+        self.message.hide()
+        if not Path(checkpoint).exists():
+            self.show_error(f"{checkpoint} does not exist.")
+            return False
+        sha = self.adapter_allowed(adapter)
+        if not sha:
+            return False
+        self.settings.setValue("last_adapter", adapter)
+        self.workbench.open_checkpoint(checkpoint, select=select, adapter=adapters.adapter_file(adapter),
+                                       adapter_sha256=sha if not sha.startswith("entry point") else "")
+        return True
+
+    def open_with_adapter_dialog(self) -> None:
+        picked = adapters.choose_with_adapter(self, str(self.settings.value("last_dir", "")),
+                                              str(self.settings.value("last_adapter", "")))
+        if picked:
+            self.settings.setValue("last_dir", str(Path(picked[0]).parent))
+            self.open_with_adapter(*picked)
+
+    def open_onnx_dialog(self) -> None:
+        folder = QFileDialog.getExistingDirectory(self, "Open an ONNX codec folder (codec.json, encoder.onnx, "
+                                                  "decoder.onnx, tokenizer.json)", str(self.settings.value("last_dir", "")))
+        if folder:
+            self.settings.setValue("last_dir", str(Path(folder).parent))
+            self.open_checkpoint(folder)
+
+    def open_run_with_adapter_dialog(self) -> None:
+        picked = adapters.choose_with_adapter(self, str(self.settings.value("last_dir", "")),
+                                              str(self.settings.value("last_adapter", "")), folder_only=True)
+        if picked:
+            self.settings.setValue("last_adapter", picked[1])
+            self.show_view("trend")
+            self.trend.run_folder(picked[0], adapter=picked[1])
 
     def _checkpoint_opened(self, path: str) -> None:
         if path in self._opening:
@@ -285,7 +345,7 @@ class MainWindow(QMainWindow):
 
     def open_checkpoint_dialog(self) -> None:
         paths, _ = QFileDialog.getOpenFileNames(self, "Open checkpoints", str(self.settings.value("last_dir", "")),
-                                                "Checkpoints (*.safetensors);;All files (*)")
+                                                f"Checkpoints (*.safetensors {MANIFEST});;All files (*)")
         for path in paths:
             self.settings.setValue("last_dir", str(Path(path).parent))
             self.open_checkpoint(path)
@@ -312,7 +372,9 @@ class MainWindow(QMainWindow):
             path = url.toLocalFile()
             if not path:
                 continue
-            if Path(path).suffix.lower() in TEXT_SUFFIXES:
+            if Path(path).name == MANIFEST or is_onnx_codec(path):
+                self.open_checkpoint(path)
+            elif Path(path).suffix.lower() in TEXT_SUFFIXES:
                 self.workbench.open_text_file(path)
             else:
                 self.open_checkpoint(path)
@@ -391,7 +453,8 @@ class MainWindow(QMainWindow):
         settings = {"sweep": self.sweep.settings_dict(), "live": self.live.settings_dict(),
                     "compare": self.compare.settings_dict(), "trend": self.trend.settings_dict(),
                     "current": self.workbench.current, "view": self.current_view(),
-                    "shown_sweep": next((k for k, v in sweeps.items() if v is self.sweep.result), "")}
+                    "shown_sweep": next((k for k, v in sweeps.items() if v is self.sweep.result), ""),
+                    "trend_adapter": self.trend.adapter}
         return report_actions.make_workspace(
             codecs=self._codecs(), text=self.workbench.text, text_source=self.workbench.text_source, settings=settings,
             sweeps=sweeps, comparison=self.compare.comparison, trend_points=self.trend.points,
@@ -438,7 +501,11 @@ class MainWindow(QMainWindow):
                 return False
         self._pending_sweeps = list(workspace.sweeps.values())
         for checkpoint in workspace.checkpoints:
-            if Path(checkpoint["path"]).is_file():
+            if not Path(checkpoint["path"]).exists():
+                continue
+            if checkpoint.get("adapter"):  # asked again before its code runs, unless that exact file was allowed
+                self.open_with_adapter(checkpoint["path"], checkpoint["adapter"], select=False)
+            else:
                 self.workbench.open_checkpoint(checkpoint["path"], select=False)
         self._attach_pending()
         current = str(settings.get("current", ""))
@@ -453,7 +520,8 @@ class MainWindow(QMainWindow):
         if workspace.comparison is not None:
             self.compare.set_comparison(workspace.comparison)
         if workspace.trend_points:
-            self.trend.set_points(workspace.trend_points, workspace.trend_folder)
+            self.trend.set_points(workspace.trend_points, workspace.trend_folder,
+                                  adapter=str(settings.get("trend_adapter", "") or ""))
         view = str(settings.get("view", ""))
         if view in self.panels:
             self.show_view(view)

@@ -492,6 +492,9 @@ def add_sweep_arguments(p: argparse.ArgumentParser, noise_choices=None) -> None:
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
 
+DEBUG_HELP = "on an error, print the full traceback after the one-sentence message"
+
+
 def build_parser() -> argparse.ArgumentParser:
     from core.analyses.compare import COMPARISON_NOISES
     from core.engine.sweep import DEFAULT_REPEATS, DEFAULT_SEED
@@ -503,6 +506,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"chunkscope {core.__version__}")
     parser.add_argument("--screenshot", metavar="PATH", help="open the workbench offscreen, save a PNG of it to PATH and exit")
     parser.add_argument("--view", metavar="NAME", help="with --screenshot: the view to show")
+    parser.add_argument("--debug", action="store_true", help=DEBUG_HELP)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
     p = sub.add_parser("info", help="describe a checkpoint and its latent health", description="Architecture, sizes, parameter count, sha256, card and latent health of one checkpoint.")
@@ -571,7 +575,23 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_worstcase)
+
+    for command in sub.choices.values():  # --debug also after the command; absent there, the top level's value stands
+        command.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help=DEBUG_HELP)
     return parser
+
+
+def print_debug(exc: BaseException, stream=None) -> None:
+    """The full traceback, including the error inside that our sentence replaced (an adapter's
+    own exception, which the one-sentence message hides with `from None`)."""
+    import traceback
+
+    seen, walked = exc, set()
+    while seen is not None and id(seen) not in walked:  # show suppressed context too: the adapter's own frames
+        walked.add(id(seen))
+        seen.__suppress_context__ = False
+        seen = seen.__cause__ or seen.__context__
+    traceback.print_exception(type(exc), exc, exc.__traceback__, file=stream or sys.stderr)
 
 
 def open_workbench(args: argparse.Namespace) -> int:
@@ -590,11 +610,10 @@ def main(argv: list[str] | None = None) -> int:
         return open_workbench(args)
     try:
         return int(args.func(args) or 0)
-    except ChunkscopeError as exc:
+    except (ChunkscopeError, FileExistsError) as exc:
         print(f"chunkscope: {exc}", file=sys.stderr)
-        return 2
-    except FileExistsError as exc:
-        print(f"chunkscope: {exc}", file=sys.stderr)
+        if args.debug:
+            print_debug(exc)
         return 2
     except (SweepCancelled, KeyboardInterrupt):  # every other command writes its outputs together at the end, or not at all
         print(f"\nchunkscope: {getattr(args, 'stopped', 'stopped; nothing was written.')}", file=sys.stderr)

@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 import core
+from core.codecs.adapter import path_sha256
 from core.codecs.checkpoint import file_sha256
 from core.analyses.compare import Comparison, read_comparison
 from core.errors import ChunkscopeError
@@ -31,7 +32,8 @@ WORKSPACE_SUFFIX = ".chunkscope"
 
 @dataclass
 class Workspace:
-    checkpoints: list[dict[str, str]] = field(default_factory=list)  # {"path", "sha256", "name"}
+    # {"path", "sha256", "name"}, and "opened_as"; opened through an adapter: "adapter", "adapter_sha256"
+    checkpoints: list[dict[str, str]] = field(default_factory=list)
     text: str = ""
     text_source: str = ""
     settings: dict[str, Any] = field(default_factory=dict)
@@ -41,14 +43,20 @@ class Workspace:
     trend_folder: str = ""
 
     def checkpoint_problems(self) -> list[str]:
-        """One sentence per referenced checkpoint that is gone or changed since the save."""
+        """One sentence per referenced checkpoint (a file, or a folder: ONNX, or what an adapter
+        opened) that is gone or changed since the save, and per adapter file gone or changed."""
         problems = []
         for c in self.checkpoints:
             path = Path(c["path"])
-            if not path.is_file():
+            if not path.exists():
                 problems.append(f"{path.name} is no longer at {path.parent}.")
-            elif c.get("sha256") and file_sha256(path) != c["sha256"]:
+            elif c.get("sha256") and path_sha256(path) != c["sha256"]:
                 problems.append(f"{path.name} has changed since the workspace was saved (its sha256 differs).")
+            adapter = Path(c["adapter"]) if c.get("adapter") and c.get("adapter_sha256") else None
+            if adapter is not None and not adapter.is_file():
+                problems.append(f"The adapter {adapter} that opened {path.name} is no longer there.")
+            elif adapter is not None and file_sha256(adapter) != c["adapter_sha256"]:
+                problems.append(f"The adapter {adapter} has changed since the workspace was saved (its sha256 differs).")
         return problems
 
 
