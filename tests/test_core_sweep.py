@@ -417,3 +417,44 @@ def test_live_paths_agree_with_the_sweep(lookup_codec, fixture_text):
     assert np.array_equal(full.predicted, result.decoded[:, si])
     assert np.array_equal(full.correct, full.predicted == chunks.token_ids)
     assert full.top_ids[:, 0].tolist() == full.predicted.tolist() and bool((np.diff(full.top_probs, axis=1) <= 0).all())
+
+
+def test_sigma_zero_is_measured_even_when_the_grid_lacks_it(lookup_codec, fixture_text):
+    """Issue 11: `--sigmas 0.3,0.5` printed acc@σ=0 nan% and "fails at 0". LookupCodec reconstructs
+    perfectly at σ = 0 (conftest), so σ = 0 must be on the grid with accuracy 1 and no level fails there."""
+    from core.engine.tolerance import BELOW_AT_ZERO
+
+    chunks = chunk_text(fixture_text, lookup_codec)
+    result = run_sweep(lookup_codec, chunks, SweepSettings(sigmas=(0.3, 0.5), repeats=2, noise="isotropic"))
+    assert result.sigmas == (0.0, 0.3, 0.5) and result.curves[0].sigma == 0.0
+    assert result.accuracy_at_zero == 1.0 and result.curves[0].tokens == 2 * chunks.num_tokens
+    assert all(t.status != BELOW_AT_ZERO for t in result.tolerances + result.loss_tolerances)
+    explicit = run_sweep(lookup_codec, chunks, SweepSettings(sigmas=(0.0, 0.3, 0.5), repeats=2, noise="isotropic"))
+    assert np.array_equal(result.wrong_counts, explicit.wrong_counts)
+
+
+def test_a_grid_far_past_every_tolerance_does_not_say_fails_at_0(lookup_codec, fixture_text):
+    """`--sigmas 1e9` said "fails at 0" at every level. Now the crossing lies between the measured
+    σ = 0 (accuracy 1) and 1e9 (accuracy near chance), read off the grid by linear interpolation."""
+    from core.engine.tolerance import OK
+
+    chunks = chunk_text(fixture_text, lookup_codec)
+    result = run_sweep(lookup_codec, chunks, SweepSettings(sigmas=(1e9,), repeats=2, noise="isotropic"))
+    acc = [c.token_accuracy for c in result.curves]
+    assert result.sigmas == (0.0, 1e9) and acc[0] == 1.0 and acc[1] < 0.1
+    for t in result.tolerances:
+        assert t.status == OK and t.sigma == pytest.approx((1 - t.level) / (1 - acc[1]) * 1e9)  # linear interpolation
+
+
+def test_the_command_line_reports_a_measured_sigma_zero(small_checkpoint, tmp_path, capsys):
+    from core.cli import main
+
+    text = tmp_path / "t.txt"
+    text.write_text("Sleepers checked: 41 of 44. Fishplates: fine.\n" * 10, encoding="utf-8")
+    out = tmp_path / "results"
+    assert main(["sweep", str(small_checkpoint), "--text", str(text), "--sigmas", "1e9", "--repeats", "2",
+                 "--out", str(out), "--quiet"]) == 0
+    data = json.loads((out / small_checkpoint.stem / "sweep.json").read_text(encoding="utf-8"))
+    assert data["settings"]["sigmas"] == [0.0, 1e9] and data["curves"][0]["sigma"] == 0.0
+    row = [line for line in capsys.readouterr().out.splitlines() if line.startswith(small_checkpoint.stem)][0]
+    assert f"{data['curves'][0]['token_accuracy'] * 100:.3f}%" in row and "nan" not in row

@@ -100,13 +100,17 @@ class SweepSettings:
     batch_chunks: int = DEFAULT_BATCH_CHUNKS
 
     def validated(self, codec=None) -> "SweepSettings":
-        """The one validator for sweep settings: returns a cleaned copy or raises SettingsError."""
+        """The one validator for sweep settings: returns a cleaned copy or raises SettingsError.
+
+        σ = 0 is always on the cleaned grid (added when missing): every tolerance and loss is then
+        read against a measured σ = 0, never against a grid that starts above it. It costs one
+        decode per chunk batch, since every repeat is the same there."""
         sigmas = tuple(float(s) for s in self.sigmas)
         if not sigmas:
             raise SettingsError("the sigma grid is empty.")
         if any(not math.isfinite(s) or s < 0 for s in sigmas):
             raise SettingsError("every sigma must be a finite number >= 0.")
-        sigmas = tuple(sorted(set(sigmas)))
+        sigmas = tuple(sorted(set(sigmas) | {0.0}))
         if not isinstance(self.repeats, int) or not 1 <= self.repeats <= 10_000:
             raise SettingsError(f"repeats must be a whole number from 1 to 10000, not {self.repeats!r}.")
         noise_model(self.noise)
