@@ -50,11 +50,15 @@ def kl_to_standard_normal(mean: torch.Tensor, std: torch.Tensor) -> torch.Tensor
     return 0.5 * (mean.square() + std.square() - 1.0) - std.log()
 
 
-def nearest_distinct_half_distance(means: torch.Tensor, block: int = 2048) -> torch.Tensor:
+def nearest_distinct_half_distance(means: torch.Tensor, block: int = 2048, should_stop=None) -> torch.Tensor:
     """Half the distance from each row to its nearest other row (rows stand for distinct chunks)."""
+    from core.errors import SweepCancelled
+
     n = means.shape[0]
     out = torch.empty(n)
     for start in range(0, n, block):
+        if should_stop is not None and should_stop():
+            raise SweepCancelled()
         d = torch.cdist(means[start : start + block].double(), means.double())
         rows = torch.arange(d.shape[0])
         d[rows, rows + start] = float("inf")
@@ -141,7 +145,7 @@ def latent_health(
     scale = LatentScale(sumsq, n)
     variance = moments.variance().astype(np.float32)
     means = torch.cat(kept) if kept else torch.zeros(0, dim)
-    half = nearest_distinct_half_distance(means) if len(means) > 1 else torch.zeros(0)
+    half = nearest_distinct_half_distance(means, block=1024, should_stop=should_stop) if len(means) > 1 else torch.zeros(0)
     half = half[torch.isfinite(half)]
     return LatentHealth(
         latent_dim=codec.latent_dim,
