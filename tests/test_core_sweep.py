@@ -61,10 +61,10 @@ def test_the_same_epsilon_is_reused_across_sigmas(tokenizer, fixture_text):
     sigmas = (0.0, 0.1, 0.3)
     run_sweep(codec, chunks, SweepSettings(sigmas=sigmas, repeats=2, noise="isotropic"))
     mean, _ = codec.encode(chunks.ids())
-    z = codec.decoded_latents  # order: repeat 0 (σ0, σ1, σ2), repeat 1 (σ0, σ1, σ2)
-    assert len(z) == 6
-    eps_r0 = [(z[i] - mean) / s for i, s in ((1, 0.1), (2, 0.3))]
-    eps_r1 = [(z[3 + i] - mean) / s for i, s in ((1, 0.1), (2, 0.3))]
+    z = codec.decoded_latents  # order: σ0 once (every repeat is the same there), repeat 0 (σ1, σ2), repeat 1 (σ1, σ2)
+    assert len(z) == 5
+    eps_r0 = [(z[1 + i] - mean) / s for i, s in ((0, 0.1), (1, 0.3))]
+    eps_r1 = [(z[3 + i] - mean) / s for i, s in ((0, 0.1), (1, 0.3))]
     assert torch.allclose(eps_r0[0], eps_r0[1], atol=1e-4)
     assert torch.allclose(eps_r1[0], eps_r1[1], atol=1e-4)
     assert not torch.allclose(eps_r0[0], eps_r1[0], atol=1e-2)
@@ -83,7 +83,7 @@ def test_a_cancelled_sweep_raises_and_stops_decoding(tokenizer, fixture_text):
 
     with pytest.raises(SweepCancelled):
         run_sweep(codec, chunks, SweepSettings(sigmas=GRID, repeats=2), should_stop=stop)
-    # a whole sweep decodes every chunk batch once per (repeat, sigma): 2 x 12 here; the cancelled one stopped at the 4th question
+    # a whole sweep decodes every chunk batch once at σ = 0 and once per (repeat, sigma > 0): 1 + 2 x 11 here; the cancelled one stopped at the 4th question
     assert 0 < len(codec.decoded_latents) <= 3 < 2 * len(GRID)
 
 
@@ -135,7 +135,7 @@ def test_an_interrupted_sweep_of_two_checkpoints_tells_the_truth_about_what_it_w
     text = tmp_path / "t.txt"
     text.write_text("Sleepers checked: 41 of 44. Fishplates: fine.\n" * 10, encoding="utf-8")
     out = tmp_path / "results"
-    _interrupt_decoding_after(monkeypatch, 3, only="b")  # a is swept (and written), b is interrupted
+    _interrupt_decoding_after(monkeypatch, 2, only="b")  # a is swept (and written), b is interrupted
     code = main(["sweep", str(tmp_path / "a.safetensors"), str(tmp_path / "b.safetensors"), "--text", str(text),
                  "--sigmas", "0,0.2", "--repeats", "2", "--out", str(out), "--quiet"])
     err = capsys.readouterr().err
@@ -210,7 +210,7 @@ def test_written_sweep_reads_back_the_same(lookup_codec, fixture_text, tmp_path)
     data = json.loads((out / "sweep.json").read_text())
     for key in ("sha256", "tokens"):
         assert key in data["provenance"]["text"]
-    assert data["provenance"]["settings"]["seed"] == 0 and data["decoded_chunks"] == chunks.num_chunks * 2 * len(GRID)
+    assert data["provenance"]["settings"]["seed"] == 0 and data["decoded_chunks"] == chunks.num_chunks * (1 + 2 * (len(GRID) - 1))  # σ = 0 once, then 2 repeats per σ > 0
     with open(out / "tokens.csv", encoding="utf-8", newline="") as handle:
         rows = list(csv.reader(handle))
     assert len(rows) == chunks.num_tokens + 1
@@ -307,13 +307,14 @@ def test_posterior_noise_is_sigma_times_the_posterior_std_times_epsilon(tokenize
     sigmas = (0.0, 0.25, 1.0)
     run_sweep(codec, chunks, SweepSettings(sigmas=sigmas, repeats=2, noise="posterior", seed=5))
     mean, std = codec.encode(chunks.ids())
-    z = codec.decoded_latents  # order: repeat 0 (σ0, σ1, σ2), repeat 1 (σ0, σ1, σ2)
-    assert len(z) == 2 * len(sigmas)
+    z = codec.decoded_latents  # order: σ0 once, repeat 0 (σ1, σ2), repeat 1 (σ1, σ2)
+    assert len(z) == 1 + 2 * (len(sigmas) - 1)
+    assert torch.equal(z[0], mean)
     for r in range(2):
         eps = draw_eps(5, r, 0, chunks.num_chunks, codec.latent_dim)  # DESIGN.md: ε per (seed, repeat, chunk)
-        for i, sigma in enumerate(sigmas):
+        for i, sigma in enumerate(sigmas[1:]):
             # DESIGN.md "Noise models", posterior: z = mean + sigma · std ⊙ ε (exact: sigma and std are powers of two)
-            assert torch.equal(z[3 * r + i], mean + sigma * std * eps), (r, sigma)
+            assert torch.equal(z[1 + 2 * r + i], mean + sigma * std * eps), (r, sigma)
     assert torch.equal(z[1][:, : codec.per_token_dim], mean[:, : codec.per_token_dim])  # std 0: never moved
 
 
@@ -416,3 +417,44 @@ def test_live_paths_agree_with_the_sweep(lookup_codec, fixture_text):
     assert np.array_equal(full.predicted, result.decoded[:, si])
     assert np.array_equal(full.correct, full.predicted == chunks.token_ids)
     assert full.top_ids[:, 0].tolist() == full.predicted.tolist() and bool((np.diff(full.top_probs, axis=1) <= 0).all())
+
+
+def test_sigma_zero_is_measured_even_when_the_grid_lacks_it(lookup_codec, fixture_text):
+    """Issue 11: `--sigmas 0.3,0.5` printed acc@σ=0 nan% and "fails at 0". LookupCodec reconstructs
+    perfectly at σ = 0 (conftest), so σ = 0 must be on the grid with accuracy 1 and no level fails there."""
+    from core.engine.tolerance import BELOW_AT_ZERO
+
+    chunks = chunk_text(fixture_text, lookup_codec)
+    result = run_sweep(lookup_codec, chunks, SweepSettings(sigmas=(0.3, 0.5), repeats=2, noise="isotropic"))
+    assert result.sigmas == (0.0, 0.3, 0.5) and result.curves[0].sigma == 0.0
+    assert result.accuracy_at_zero == 1.0 and result.curves[0].tokens == 2 * chunks.num_tokens
+    assert all(t.status != BELOW_AT_ZERO for t in result.tolerances + result.loss_tolerances)
+    explicit = run_sweep(lookup_codec, chunks, SweepSettings(sigmas=(0.0, 0.3, 0.5), repeats=2, noise="isotropic"))
+    assert np.array_equal(result.wrong_counts, explicit.wrong_counts)
+
+
+def test_a_grid_far_past_every_tolerance_does_not_say_fails_at_0(lookup_codec, fixture_text):
+    """`--sigmas 1e9` said "fails at 0" at every level. Now the crossing lies between the measured
+    σ = 0 (accuracy 1) and 1e9 (accuracy near chance), read off the grid by linear interpolation."""
+    from core.engine.tolerance import OK
+
+    chunks = chunk_text(fixture_text, lookup_codec)
+    result = run_sweep(lookup_codec, chunks, SweepSettings(sigmas=(1e9,), repeats=2, noise="isotropic"))
+    acc = [c.token_accuracy for c in result.curves]
+    assert result.sigmas == (0.0, 1e9) and acc[0] == 1.0 and acc[1] < 0.1
+    for t in result.tolerances:
+        assert t.status == OK and t.sigma == pytest.approx((1 - t.level) / (1 - acc[1]) * 1e9)  # linear interpolation
+
+
+def test_the_command_line_reports_a_measured_sigma_zero(small_checkpoint, tmp_path, capsys):
+    from core.cli import main
+
+    text = tmp_path / "t.txt"
+    text.write_text("Sleepers checked: 41 of 44. Fishplates: fine.\n" * 10, encoding="utf-8")
+    out = tmp_path / "results"
+    assert main(["sweep", str(small_checkpoint), "--text", str(text), "--sigmas", "1e9", "--repeats", "2",
+                 "--out", str(out), "--quiet"]) == 0
+    data = json.loads((out / small_checkpoint.stem / "sweep.json").read_text(encoding="utf-8"))
+    assert data["settings"]["sigmas"] == [0.0, 1e9] and data["curves"][0]["sigma"] == 0.0
+    row = [line for line in capsys.readouterr().out.splitlines() if line.startswith(small_checkpoint.stem)][0]
+    assert f"{data['curves'][0]['token_accuracy'] * 100:.3f}%" in row and "nan" not in row

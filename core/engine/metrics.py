@@ -6,6 +6,7 @@ partial accumulators merge. Definitions follow DESIGN.md.
 
 from __future__ import annotations
 
+import heapq
 import math
 from collections import Counter
 from dataclasses import asdict, dataclass, field
@@ -16,6 +17,7 @@ from core.deferred import inference_mode, torch
 
 ECE_BINS = 15
 EXP_FLOOR = -80.0
+SQUARE_FLOOR = 2.0 ** -60
 WILSON_Z = 1.959963984540054  # two-sided 95 %: the 0.975 quantile of N(0, 1)
 FREQUENCY_EDGES = (1, 2, 4, 16, 64, 256)  # occurrences of a token type in the evaluated text
 
@@ -86,7 +88,9 @@ def score_logits(logits: torch.Tensor, targets: torch.Tensor, inplace: bool = Fa
     # and leaving it in makes exp produce subnormals, which are many times slower on x86
     e = shifted.clamp_(min=EXP_FLOOR).exp_()
     s = e.sum(-1)
-    sq = torch.linalg.vector_norm(e, dim=-1).square()
+    # Σ p² for the Brier score: squares of terms below 2^-60 (~1e-18) are subnormal in float32 and make the
+    # norm several times slower, yet each adds under 1e-36 to a sum >= 1; raise them to 2^-60 first
+    sq = torch.linalg.vector_norm(e.clamp_(min=SQUARE_FLOOR), dim=-1).square()
     nll = s.log() - (true_logit - top)
     p_true = torch.exp(-nll)
     confidence = 1.0 / s
@@ -152,44 +156,72 @@ class SigmaAccumulator:
         mask: torch.Tensor,
         bucket: torch.Tensor | None = None,
         inplace: bool = False,
+        times: int = 1,
     ) -> TokenScores:
         predicted, confidence, nll, brier = score_logits(logits, targets, inplace=inplace)
         correct = predicted == targets
-        self.add(predicted, correct, confidence, nll, brier, targets, mask, bucket)
+        self.add(predicted, correct, confidence, nll, brier, targets, mask, bucket, times)
         return TokenScores(predicted, correct)
 
-    def add(self, predicted, correct, confidence, nll, brier, targets, mask, bucket=None) -> None:
+    def add(self, predicted, correct, confidence, nll, brier, targets, mask, bucket=None, times: int = 1) -> None:
+        """Add one scored batch, `times` over (repeats that are identical, as at σ = 0, count once each)."""
+        n = int(times)
         real_correct = correct & mask
-        self.tokens += int(mask.sum())
-        self.correct += int(real_correct.sum())
-        self.chunks += int(mask.shape[0])
-        self.chunks_exact += int((correct | ~mask).all(1).sum())
-        self.position_correct += real_correct.sum(0).numpy()
-        self.position_total += mask.sum(0).numpy()
-        self.nll_sum += float(nll[mask].double().sum())
-        self.brier_sum += float(brier[mask].double().sum())
+        self.tokens += n * int(mask.sum())
+        self.correct += n * int(real_correct.sum())
+        self.chunks += n * int(mask.shape[0])
+        self.chunks_exact += n * int((correct | ~mask).all(1).sum())
+        self.position_correct += n * real_correct.sum(0).numpy()
+        self.position_total += n * mask.sum(0).numpy()
+        self.nll_sum += n * float(nll[mask].double().sum())
+        self.brier_sum += n * float(brier[mask].double().sum())
         conf = confidence[mask]
-        bins = ece_bin_index(conf)
-        self.bin_count += np.bincount(bins.numpy(), minlength=ECE_BINS)
-        self.bin_confidence += np.bincount(bins.numpy(), weights=conf.double().numpy(), minlength=ECE_BINS)
-        self.bin_correct += np.bincount(bins.numpy(), weights=real_correct[mask].numpy(), minlength=ECE_BINS).astype(np.int64)
+        bins = ece_bin_index(conf).numpy()
+        self.bin_count += n * np.bincount(bins, minlength=ECE_BINS)
+        self.bin_confidence += n * np.bincount(bins, weights=conf.double().numpy(), minlength=ECE_BINS)
+        self.bin_correct += n * np.bincount(bins, weights=real_correct[mask].numpy(), minlength=ECE_BINS).astype(np.int64)
         if bucket is not None:
             b = bucket[mask].numpy()
             nb = len(self.bucket_total)
-            self.bucket_total += np.bincount(b, minlength=nb)
-            self.bucket_correct += np.bincount(b, weights=real_correct[mask].numpy(), minlength=nb).astype(np.int64)
+            self.bucket_total += n * np.bincount(b, minlength=nb)
+            self.bucket_correct += n * np.bincount(b, weights=real_correct[mask].numpy(), minlength=nb).astype(np.int64)
         wrong = mask & ~correct
         if bool(wrong.any()):
             keys = targets[wrong] * self.vocab_size + predicted[wrong]
             values, counts = torch.unique(keys, return_counts=True)
-            self.confusions.update(dict(zip(values.tolist(), counts.tolist())))
+            self.confusions.update(dict(zip(values.tolist(), (n * counts).tolist())))
+
+    _SCALARS = ("tokens", "correct", "chunks", "chunks_exact", "nll_sum", "brier_sum")
+    _ARRAYS = ("position_correct", "position_total", "bin_count", "bin_confidence", "bin_correct", "bucket_correct", "bucket_total")
 
     def merge(self, other: "SigmaAccumulator") -> None:
-        for name in ("tokens", "correct", "chunks", "chunks_exact", "nll_sum", "brier_sum"):
+        """Add another accumulator's state at the same sigma (counts add exactly, sums to float rounding)."""
+        if other.sigma != self.sigma or len(other.position_total) != len(self.position_total):
+            raise ValueError(f"an accumulator at σ = {other.sigma} does not merge into one at σ = {self.sigma}.")
+        for name in self._SCALARS:
             setattr(self, name, getattr(self, name) + getattr(other, name))
-        for name in ("position_correct", "position_total", "bin_count", "bin_confidence", "bin_correct", "bucket_correct", "bucket_total"):
+        for name in self._ARRAYS:
             getattr(self, name).__iadd__(getattr(other, name))
         self.confusions.update(other.confusions)
+
+    def state(self) -> dict:
+        """Everything this accumulator holds, as numbers and NumPy arrays (picklable, no torch)."""
+        keys = np.fromiter(self.confusions.keys(), dtype=np.int64, count=len(self.confusions))
+        counts = np.fromiter(self.confusions.values(), dtype=np.int64, count=len(self.confusions))
+        return {"sigma": self.sigma, "vocab_size": self.vocab_size,
+                **{name: getattr(self, name) for name in self._SCALARS},
+                **{name: getattr(self, name).copy() for name in self._ARRAYS},
+                "confusion_keys": keys, "confusion_counts": counts}
+
+    @classmethod
+    def from_state(cls, state: dict) -> "SigmaAccumulator":
+        acc = cls(state["sigma"], len(state["position_total"]), int(state["vocab_size"]), len(state["bucket_total"]))
+        for name in cls._SCALARS:
+            setattr(acc, name, state[name])
+        for name in cls._ARRAYS:
+            setattr(acc, name, np.array(state[name], dtype=getattr(acc, name).dtype))
+        acc.confusions = Counter(dict(zip(state["confusion_keys"].tolist(), state["confusion_counts"].tolist())))
+        return acc
 
     def ece(self) -> float:
         total = self.bin_count.sum()
@@ -206,7 +238,9 @@ class SigmaAccumulator:
         with np.errstate(invalid="ignore", divide="ignore"):
             position = np.where(self.position_total > 0, self.position_correct / np.maximum(self.position_total, 1), np.nan)
             bucket = np.where(self.bucket_total > 0, self.bucket_correct / np.maximum(self.bucket_total, 1), np.nan)
-        confusions = [(key // self.vocab_size, key % self.vocab_size, count) for key, count in self.confusions.most_common(max_confusions)]
+        # most frequent first, ties by (true, decoded) id: the same list however the counts were gathered
+        top = heapq.nsmallest(max_confusions, self.confusions.items(), key=lambda kv: (-kv[1], kv[0]))
+        confusions = [(key // self.vocab_size, key % self.vocab_size, count) for key, count in top]
         return SigmaMetrics(
             sigma=self.sigma,
             tokens=n,

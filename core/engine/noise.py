@@ -7,7 +7,9 @@ sweep and in the live view, whatever batch size is used (common random numbers).
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Callable, Mapping
 
 import numpy as np
@@ -22,29 +24,69 @@ Progress = Callable[[int, int], None]
 ShouldStop = Callable[[], bool]
 
 
+ENCODE_BATCH = 4096  # chunks per encode call when a whole text is encoded
+
+
+@dataclass(frozen=True)
+class LatentScale:
+    """Σ mean² per latent dimension (float64) over `chunks` chunks: all a sweep needs of the whole
+    text's latents. Sums over consecutive ENCODE_BATCH blocks, added in order, so a text encoded
+    block by block and the same text held whole give the same numbers."""
+
+    sumsq: np.ndarray  # [D] float64
+    chunks: int
+
+    @property
+    def rms_per_dim(self) -> torch.Tensor:
+        """r_j = RMS of mean_j over the chunks: the data-scale of DESIGN.md (float32 [D])."""
+        return torch.from_numpy(np.sqrt(self.sumsq / max(self.chunks, 1))).float()
+
+    @property
+    def latent_rms(self) -> float:
+        return float(math.sqrt(self.sumsq.sum() / max(self.chunks * len(self.sumsq), 1)))
+
+    def merge(self, other: "LatentScale") -> "LatentScale":
+        return LatentScale(self.sumsq + other.sumsq, self.chunks + other.chunks)
+
+    @staticmethod
+    def of(mean: torch.Tensor) -> "LatentScale":
+        sumsq = np.zeros(mean.shape[1], dtype=np.float64)
+        for start in range(0, mean.shape[0], ENCODE_BATCH):
+            sumsq += mean[start : start + ENCODE_BATCH].double().square().sum(0).numpy()
+        return LatentScale(sumsq, int(mean.shape[0]))
+
+
 @dataclass
 class Encoded:
-    """The posterior of every chunk of a text: mean [N, D] and, for variational codecs, std [N, D]."""
+    """The posterior of chunks of a text: mean [N, D] and, for variational codecs, std [N, D].
+
+    `data_scale` is the text's r when these are only some of its chunks (a sweep's batch);
+    by default r is measured over the chunks held here."""
 
     mean: torch.Tensor
     std: torch.Tensor | None
+    data_scale: torch.Tensor | None = None
 
     @property
     def num_chunks(self) -> int:
         return int(self.mean.shape[0])
 
+    @cached_property
+    def scale(self) -> LatentScale:
+        return LatentScale.of(self.mean)
+
     @property
     def rms_per_dim(self) -> torch.Tensor:
-        """r_j = RMS of mean_j over the chunks: the data-scale of DESIGN.md."""
-        return self.mean.square().mean(0).sqrt()
+        """r_j = RMS of mean_j over the text's chunks: the data-scale of DESIGN.md."""
+        return self.data_scale if self.data_scale is not None else self.scale.rms_per_dim
 
     @property
     def latent_rms(self) -> float:
-        return float(self.mean.square().mean().sqrt())
+        return self.scale.latent_rms
 
 
 def encode_chunks(
-    codec, chunks, batch: int = 4096, progress: Progress | None = None, should_stop: ShouldStop | None = None
+    codec, chunks, batch: int = ENCODE_BATCH, progress: Progress | None = None, should_stop: ShouldStop | None = None
 ) -> Encoded:
     codec = opened(codec)
     n = chunks.num_chunks
@@ -59,6 +101,22 @@ def encode_chunks(
         if progress is not None:
             progress(min(start + batch, n), n)
     return Encoded(torch.cat(means), torch.cat(stds) if stds else None)
+
+
+def measure_scale(codec, chunks, progress: Progress | None = None, should_stop: ShouldStop | None = None) -> LatentScale:
+    """The text's LatentScale, encoding it block by block and keeping no latent."""
+    codec = opened(codec)
+    n = chunks.num_chunks
+    sumsq = None
+    for start in range(0, n, ENCODE_BATCH):
+        if should_stop is not None and should_stop():
+            raise SweepCancelled()
+        mean = codec.encode(chunks.ids(start, start + ENCODE_BATCH))[0].float()
+        part = mean.double().square().sum(0).numpy()
+        sumsq = part if sumsq is None else sumsq + part
+        if progress is not None:
+            progress(min(start + ENCODE_BATCH, n), n)
+    return LatentScale(sumsq, n)
 
 
 @dataclass(frozen=True)

@@ -1,8 +1,31 @@
-"""The sweep: encode once, then for each sigma and repeat perturb, decode and score.
+"""The sweep: for each chunk batch, encode, then per repeat and sigma perturb, decode and score.
 
 Loop order is chunk batch -> repeat -> sigma, so each (chunk, repeat) draws ε once and
-reuses it across the grid. Nothing holds all logits: per sigma a streaming accumulator,
-per token a small count of wrong repeats and the decode of repeat 0.
+reuses it across the grid. At σ = 0 every repeat decodes the same latent, so it is decoded
+once per batch and counted `repeats` times. Nothing holds all logits: per sigma a streaming
+accumulator, per token a small count of wrong repeats and the decode of repeat 0.
+
+Shards (for running a sweep on several processes or machines)
+-------------------------------------------------------------
+A sweep is a sum over chunk ranges. Three steps, all NumPy-only and picklable in between:
+
+    plan = plan_sweep(codec, chunks, settings)          # once, on the client
+    shard = sweep_shard(codec, ids, plan, start, stop)  # per range, anywhere
+    result = merge_shards(plan, shards, chunks, codec)  # once, on the client: a SweepResult
+
+- `plan_sweep` validates the settings and measures all that needs the whole text: the
+  frequency bucket of each token type, and for data-scale noise the text's r (one encoding
+  pass, block by block, keeping no latent). A SweepPlan is O(vocabulary + latent dim).
+- `sweep_shard` sweeps chunks start..stop. `start` must be a multiple of NOISE_BLOCK and `stop`
+  one too or the text's last chunk, so draw_eps gives the noise of the whole-text sweep.
+  `ids` is the whole Chunks or just token_ids[start*K : stop*K]. The shard encodes its own
+  batches unless `encoded=` (the whole text's Encoded) is given. It returns a SweepShard:
+  per-sigma accumulator states, the range's per-token wrong_counts/decoded rows, Σ mean².
+- `merge_shards` takes shards in any order; they must cover 0..n_chunks exactly once. Counts
+  equal the one-process sweep exactly; float sums agree to rounding. `plan.shard_ranges(n)`
+  cuts on whole `batch_chunks` batches, so every decode batch is the one-process sweep's own
+  (decodes are then bitwise the same even on a BLAS whose rows depend on the batch size).
+- `run_sweep` is exactly plan + one shard + merge in this process.
 """
 
 from __future__ import annotations
@@ -23,14 +46,15 @@ import numpy as np
 
 import core
 from core.codecs.contract import opened
-from core.deferred import torch
+from core.deferred import inference_mode, torch
 from core.errors import ChunkscopeError, SettingsError, SweepCancelled
 from core.outputs.files import result_folder, staged_folder
 from core.outputs.reading import Damaged, json_kind, need
 from core.engine.noise import (
-    NOISE_BLOCK, NOISE_MODELS, Encoded, Progress, ShouldStop, check_noise, draw_eps, encode_chunks, noise_model, noise_scale,
+    NOISE_BLOCK, NOISE_MODELS, Encoded, LatentScale, Progress, ShouldStop, check_noise, draw_eps, encode_chunks, measure_scale,
+    noise_model, noise_scale,
 )
-from core.engine.metrics import SigmaAccumulator, SigmaMetrics, frequency_buckets
+from core.engine.metrics import FREQUENCY_EDGES, SigmaAccumulator, SigmaMetrics, frequency_buckets  # noqa: F401
 from core.engine.text import Chunks
 from core.engine.tolerance import (  # noqa: F401 (re-exported; the vocabulary lives in core.engine.tolerance)
     LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, Tolerance, loss_tolerance_at, tolerance_at, tolerance_text, tolerances_of,
@@ -76,13 +100,17 @@ class SweepSettings:
     batch_chunks: int = DEFAULT_BATCH_CHUNKS
 
     def validated(self, codec=None) -> "SweepSettings":
-        """The one validator for sweep settings: returns a cleaned copy or raises SettingsError."""
+        """The one validator for sweep settings: returns a cleaned copy or raises SettingsError.
+
+        σ = 0 is always on the cleaned grid (added when missing): every tolerance and loss is then
+        read against a measured σ = 0, never against a grid that starts above it. It costs one
+        decode per chunk batch, since every repeat is the same there."""
         sigmas = tuple(float(s) for s in self.sigmas)
         if not sigmas:
             raise SettingsError("the sigma grid is empty.")
         if any(not math.isfinite(s) or s < 0 for s in sigmas):
             raise SettingsError("every sigma must be a finite number >= 0.")
-        sigmas = tuple(sorted(set(sigmas)))
+        sigmas = tuple(sorted(set(sigmas) | {0.0}))
         if not isinstance(self.repeats, int) or not 1 <= self.repeats <= 10_000:
             raise SettingsError(f"repeats must be a whole number from 1 to 10000, not {self.repeats!r}.")
         noise_model(self.noise)
@@ -101,10 +129,15 @@ class SweepSettings:
 
 def critical_sigmas(sigmas: Sequence[float], wrong_counts: np.ndarray, repeats: int) -> np.ndarray:
     """Per token: the smallest grid sigma at which it is wrong in at least half the repeats (NaN: never)."""
-    broken = wrong_counts.astype(np.int64) * 2 >= repeats
-    first = np.argmax(broken, axis=1)
-    out = np.asarray(sigmas, dtype=np.float64)[first]
-    out[~broken.any(axis=1)] = np.nan
+    grid = np.asarray(sigmas, dtype=np.float64)
+    out = np.empty(len(wrong_counts), dtype=np.float64)
+    threshold = (int(repeats) + 1) // 2  # 2·w >= repeats  <=>  w >= ceil(repeats / 2)
+    for a in range(0, len(wrong_counts), 1 << 20):  # in row blocks: no [T, S] temporary of int64
+        broken = wrong_counts[a : a + (1 << 20)] >= threshold
+        first = np.argmax(broken, axis=1)
+        block = grid[first]
+        block[~broken.any(axis=1)] = np.nan
+        out[a : a + len(block)] = block
     return out
 
 
@@ -182,14 +215,21 @@ class SweepResult:
 
     def tokens_csv(self) -> str:
         out = io.StringIO()
-        writer = csv.writer(out, lineterminator="\n")
-        writer.writerow(["index", "token_id", "text", "char_start", "char_end", "chunk", "position", "critical_sigma"])
-        text, spans, k = self.chunks.text, self.chunks.spans, self.chunks.chunk_size
-        for t in range(self.chunks.num_tokens):
-            a, b = int(spans[t, 0]), int(spans[t, 1])
-            crit = self.critical_sigma[t]
-            writer.writerow([t, int(self.chunks.token_ids[t]), text[a:b], a, b, t // k, t % k, "" if np.isnan(crit) else f"{crit:.6g}"])
+        self.write_tokens_csv(out)
         return out.getvalue()
+
+    def write_tokens_csv(self, stream) -> None:
+        """tokens.csv into an open text stream, block by block (a long text never becomes one string)."""
+        writer = csv.writer(stream, lineterminator="\n")
+        writer.writerow(["index", "token_id", "text", "char_start", "char_end", "chunk", "position", "critical_sigma"])
+        text, k = self.chunks.text, self.chunks.chunk_size
+        for a0 in range(0, self.chunks.num_tokens, 65536):
+            b0 = min(a0 + 65536, self.chunks.num_tokens)
+            spans = self.chunks.spans[a0:b0].tolist()
+            ids = self.chunks.token_ids[a0:b0].tolist()
+            crit = [("" if c != c else f"{c:.6g}") for c in self.critical_sigma[a0:b0].tolist()]
+            writer.writerows([t, i, text[a:b], a, b, t // k, t % k, c]
+                             for t, i, (a, b), c in zip(range(a0, b0), ids, spans, crit))
 
     def write(self, directory: str | os.PathLike, force: bool = False) -> Path:
         """Write sweep.json, curves.csv, tokens.csv and arrays.npz into a fresh directory, atomically."""
@@ -203,7 +243,8 @@ class SweepResult:
         folder.mkdir(parents=True, exist_ok=True)
         (folder / "sweep.json").write_text(json.dumps(self.to_json_dict(), indent=1, allow_nan=True), encoding="utf-8")
         (folder / "curves.csv").write_text(self.curves_csv(), encoding="utf-8")
-        (folder / "tokens.csv").write_text(self.tokens_csv(), encoding="utf-8")
+        with open(folder / "tokens.csv", "w", encoding="utf-8", newline="") as stream:
+            self.write_tokens_csv(stream)
         (folder / "text.txt").write_text(self.chunks.text, encoding="utf-8")
         (folder / "vocab.json").write_text(json.dumps({str(k): v for k, v in self.token_text.items()}), encoding="utf-8")
         np.savez_compressed(
@@ -377,7 +418,9 @@ def _sweep_from_files(label: str, raw: dict[str, Any]) -> SweepResult:
 def token_texts(tokenizer, *id_arrays: np.ndarray, vocab_size: int) -> dict[int, str]:
     present = np.zeros(vocab_size, dtype=bool)
     for ids in id_arrays:
-        present |= np.bincount(ids.ravel().astype(np.int64), minlength=vocab_size)[:vocab_size] > 0
+        columns = ids.reshape(len(ids), -1) if ids.ndim else ids.reshape(1, 1)
+        for j in range(columns.shape[1]):  # column by column: no int64 copy of a [T, S] array
+            present |= np.bincount(columns[:, j].astype(np.int64), minlength=vocab_size)[:vocab_size] > 0
     return {int(i): token_display(tokenizer, int(i)) for i in np.flatnonzero(present)}
 
 
@@ -394,67 +437,257 @@ def provenance(codec, chunks: Chunks, settings: SweepSettings, text_source: str 
     }
 
 
-def run_sweep(
+@dataclass(frozen=True)
+class SweepPlan:
+    """What every shard of one sweep shares: the validated settings and all that needs the whole text.
+
+    Small (O(vocabulary + latent dim)), NumPy only, picklable."""
+
+    settings: SweepSettings
+    codec_name: str
+    text_sha256: str
+    n_chunks: int
+    n_tokens: int
+    chunk_size: int
+    pad_id: int
+    vocab_size: int
+    latent_dim: int
+    bucket_of_type: np.ndarray  # [V] int8: frequency bucket of each token type in this text (-1: absent)
+    data_scale: np.ndarray | None  # [D] float32 r, when the noise model needs it or the latents were given
+    latent_rms: float | None  # None: measured from the shards' sums
+
+    def shard_ranges(self, shards: int) -> list[tuple[int, int]]:
+        """About `shards` contiguous (start_chunk, stop_chunk) ranges covering the text, each a whole
+        number of the settings' batches (so every decode batch is the one-process sweep's)."""
+        batch = self.settings.batch_chunks
+        batches = -(-self.n_chunks // batch)
+        shards = max(1, min(int(shards), batches))
+        edges = [round(i * batches / shards) * batch for i in range(shards + 1)]
+        return [(a, min(b, self.n_chunks)) for a, b in zip(edges, edges[1:]) if a < min(b, self.n_chunks)]
+
+
+@dataclass
+class SweepShard:
+    """One NOISE_BLOCK-aligned range of chunks, swept: NumPy only, picklable; merge with merge_shards."""
+
+    start_chunk: int
+    stop_chunk: int
+    accumulators: list[dict]  # SigmaAccumulator.state() per sigma
+    wrong_counts: np.ndarray  # [tokens of the range, S]
+    decoded: np.ndarray  # [tokens of the range, S]
+    latent_sumsq: np.ndarray  # [D] float64, Σ mean² over the range's chunks
+    decoded_chunks: int
+    elapsed_s: float
+
+
+def _count_dtype(repeats: int):
+    return np.uint8 if repeats < 256 else np.uint16 if repeats < 65536 else np.uint32
+
+
+def _decoded_dtype(vocab_size: int):
+    return np.int16 if vocab_size <= 32767 else np.int32
+
+
+def plan_sweep(
     codec,
     chunks: Chunks,
     settings: SweepSettings = SweepSettings(),
-    progress: Progress | None = None,
-    should_stop: ShouldStop | None = None,
     encoded: Encoded | None = None,
-    text_source: str = "",
-) -> SweepResult:
-    """Sweep one codec over one text. Raises SweepCancelled (and returns nothing) if stopped."""
+    should_stop: ShouldStop | None = None,
+    progress: Progress | None = None,
+) -> SweepPlan:
+    """Validate the settings and measure what needs the whole text. Encodes the text once, block by
+    block and keeping no latent, only when the noise model needs the data scale r and `encoded` is not given."""
     codec = opened(codec)
     settings = settings.validated(codec)
     if chunks.chunk_size != codec.chunk_size:
         raise SettingsError(f"the text was cut into chunks of {chunks.chunk_size}, but {codec.name} takes {codec.chunk_size}.")
+    ids = chunks.token_ids.astype(np.int64, copy=False)
+    counts = np.bincount(ids, minlength=codec.vocab_size)
+    bucket_of_type = (np.searchsorted(np.asarray(FREQUENCY_EDGES), counts, side="right") - 1).astype(np.int8)
+    if encoded is not None:
+        if encoded.num_chunks != chunks.num_chunks:
+            raise SettingsError(f"the latents given hold {encoded.num_chunks} chunks, but the text has {chunks.num_chunks}.")
+        scale = encoded.scale
+    elif settings.noise == "data-scale":
+        scale = measure_scale(codec, chunks, progress=progress, should_stop=should_stop)
+    else:
+        scale = None
+    return SweepPlan(
+        settings=settings, codec_name=codec.name, text_sha256=chunks.text_sha256, n_chunks=chunks.num_chunks,
+        n_tokens=chunks.num_tokens, chunk_size=codec.chunk_size, pad_id=codec.pad_id, vocab_size=codec.vocab_size,
+        latent_dim=codec.latent_dim, bucket_of_type=bucket_of_type,
+        data_scale=None if scale is None else (encoded.rms_per_dim if encoded is not None else scale.rms_per_dim).numpy(),
+        latent_rms=None if scale is None else scale.latent_rms,
+    )
+
+
+class _Range:
+    """Token ids of chunks start..stop (from a whole Chunks, or the range's own ids) cut into batches."""
+
+    def __init__(self, plan: SweepPlan, chunks_or_ids, start: int, stop: int):
+        k = plan.chunk_size
+        t0, t1 = start * k, min(stop * k, plan.n_tokens)
+        if isinstance(chunks_or_ids, Chunks):
+            if chunks_or_ids.text_sha256 != plan.text_sha256 or chunks_or_ids.num_tokens != plan.n_tokens:
+                raise SettingsError("this shard's text is not the text its sweep was planned for.")
+            ids = chunks_or_ids.token_ids[t0:t1]
+        else:
+            ids = np.asarray(chunks_or_ids)
+            if ids.shape != (t1 - t0,):
+                raise SettingsError(f"chunks {start}..{stop} hold {t1 - t0} tokens, but {ids.shape} ids were given.")
+        self.ids_flat = torch.from_numpy(ids.astype(np.int64))
+        self.buckets_flat = torch.from_numpy(plan.bucket_of_type[ids].astype(np.int64))
+        self.k, self.start, self.t0 = k, start, t0
+
+
+def _check_range(plan: SweepPlan, start: int, stop: int) -> None:
+    if not (0 <= start < stop <= plan.n_chunks) or start % NOISE_BLOCK or (stop % NOISE_BLOCK and stop != plan.n_chunks):
+        raise SettingsError(
+            f"a shard must cover chunks start..stop with 0 <= start < stop <= {plan.n_chunks}, both multiples of "
+            f"{NOISE_BLOCK} (or stop the last chunk), not {start}..{stop}."
+        )
+
+
+@inference_mode
+def sweep_shard(
+    codec,
+    chunks_or_ids,
+    plan: SweepPlan,
+    start_chunk: int,
+    stop_chunk: int,
+    should_stop: ShouldStop | None = None,
+    progress: Progress | None = None,
+    encoded: Encoded | None = None,
+) -> SweepShard:
+    """Sweep chunks start_chunk..stop_chunk of the planned text. `chunks_or_ids` is the whole Chunks or
+    the range's own token ids (token_ids[start*K : stop*K]); `encoded`, if given, holds the whole
+    text's latents (else each batch is encoded here). Raises SweepCancelled if stopped."""
     started = time.perf_counter()
-    if encoded is None:
-        encoded = encode_chunks(codec, chunks, should_stop=should_stop)
-    sigmas = settings.sigmas
-    n_sigma, repeats, k = len(sigmas), settings.repeats, codec.chunk_size
-    n_chunks, dim = encoded.num_chunks, codec.latent_dim
-    accumulators = [SigmaAccumulator(s, k, codec.vocab_size) for s in sigmas]
-    n_tokens = chunks.num_tokens
-    count_dtype = np.uint8 if repeats < 256 else np.uint16 if repeats < 65536 else np.uint32
-    wrong_counts = np.zeros((n_tokens, n_sigma), dtype=count_dtype)
-    decoded_dtype = np.int16 if codec.vocab_size <= 32767 else np.int32
-    decoded = np.zeros((n_tokens, n_sigma), dtype=decoded_dtype)
-    buckets_all = torch.from_numpy(frequency_buckets(chunks.token_ids))
-    batch = settings.batch_chunks
-    total = -(-n_chunks // batch) * repeats * n_sigma
-    done = 0
+    codec = opened(codec)
+    _check_range(plan, start_chunk, stop_chunk)
+    settings = plan.settings
+    sigmas, repeats, k, dim = settings.sigmas, settings.repeats, plan.chunk_size, plan.latent_dim
+    n_sigma = len(sigmas)
+    rows = _Range(plan, chunks_or_ids, start_chunk, stop_chunk)
+    n_rows = len(rows.ids_flat)
+    count_dtype, decoded_dtype = _count_dtype(repeats), _decoded_dtype(plan.vocab_size)
+    wrong_counts = np.zeros((n_rows, n_sigma), dtype=count_dtype)
+    decoded = np.zeros((n_rows, n_sigma), dtype=decoded_dtype)
+    accumulators = [SigmaAccumulator(sg, k, plan.vocab_size) for sg in sigmas]
+    data_scale = None if plan.data_scale is None else torch.from_numpy(plan.data_scale)
+    sumsq = np.zeros(dim, dtype=np.float64)
+    zero_first = sigmas[0] == 0
+    noisy = [si for si in range(n_sigma) if sigmas[si] > 0]
+    per_chunk = int(zero_first) + repeats * len(noisy)
+    total, done = (stop_chunk - start_chunk) * per_chunk, 0
     sigma_tensor = torch.tensor(sigmas, dtype=torch.float32)
-    for start in range(0, n_chunks, batch):
-        stop = min(start + batch, n_chunks)
-        ids = chunks.ids(start, stop)
-        mask = chunks.mask(start, stop)
-        t0, t1 = start * k, min(stop * k, n_tokens)
-        bucket = torch.zeros(stop - start, k, dtype=torch.int64)
-        bucket.view(-1)[: t1 - t0] = buckets_all[t0:t1]
-        mean = encoded.mean[start:stop]
-        scale = noise_scale(settings.noise, encoded, start, stop)
+    batch = settings.batch_chunks
+    a = start_chunk
+    while a < stop_chunk:
+        b = min((a // batch + 1) * batch, stop_chunk)  # batches on the one-process sweep's grid
+        if should_stop is not None and should_stop():
+            raise SweepCancelled()
+        n = b - a
+        lo = (a - start_chunk) * k
+        real = min(n * k, n_rows - lo)
+        ids = torch.full((n * k,), plan.pad_id, dtype=torch.int64)
+        ids[:real] = rows.ids_flat[lo : lo + real]
+        ids = ids.view(n, k)
+        mask = torch.zeros(n * k, dtype=torch.bool)
+        mask[:real] = True
+        mask = mask.view(n, k)
+        bucket = torch.zeros(n * k, dtype=torch.int64)
+        bucket[:real] = rows.buckets_flat[lo : lo + real]
+        bucket = bucket.view(n, k)
+        if encoded is not None:
+            mean = encoded.mean[a:b]
+            std = None if encoded.std is None else encoded.std[a:b]
+        else:
+            mean, std = codec.encode(ids)
+            mean, std = mean.float(), None if std is None else std.float()
+        sumsq += mean.double().square().sum(0).numpy()
+        scale = noise_scale(settings.noise, Encoded(mean, std, data_scale=data_scale), 0, n)
+        wrong_rows = np.zeros((n_sigma, real), dtype=count_dtype)  # sigma-major here, one transposed write per batch
+        decoded_rows = np.zeros((n_sigma, real), dtype=decoded_dtype)
+        if zero_first:  # every repeat decodes the same latent at σ = 0: decode once, count it `repeats` times
+            if should_stop is not None and should_stop():
+                raise SweepCancelled()
+            scores = accumulators[0].update(codec.decode(mean), ids, mask, bucket, inplace=True, times=repeats)
+            wrong_rows[0] = (~scores.correct).reshape(-1)[:real].numpy().astype(count_dtype) * count_dtype(repeats)
+            decoded_rows[0] = scores.predicted.reshape(-1)[:real].numpy()
+            done += n
+            if progress is not None:
+                progress(done, total)
         for r in range(repeats):
-            step = draw_eps(settings.seed, r, start, stop, dim) * scale
-            for si in range(n_sigma):
+            step = draw_eps(settings.seed, r, a, b, dim) * scale if noisy else None
+            for si in noisy:
                 if should_stop is not None and should_stop():
                     raise SweepCancelled()
-                z = mean + sigma_tensor[si] * step if sigmas[si] > 0 else mean
-                logits = codec.decode(z)
+                logits = codec.decode(mean + sigma_tensor[si] * step)
                 scores = accumulators[si].update(logits, ids, mask, bucket, inplace=True)
-                flat_wrong = (~scores.correct).reshape(-1)[: t1 - t0].numpy()
-                wrong_counts[t0:t1, si] += flat_wrong.astype(count_dtype)
+                wrong_rows[si] += (~scores.correct).reshape(-1)[:real].numpy()
                 if r == 0:
-                    decoded[t0:t1, si] = scores.predicted.reshape(-1)[: t1 - t0].numpy().astype(decoded_dtype)
-                done += 1
+                    decoded_rows[si] = scores.predicted.reshape(-1)[:real].numpy()
+                done += n
                 if progress is not None:
                     progress(done, total)
+        wrong_counts[lo : lo + real] = wrong_rows.T
+        decoded[lo : lo + real] = decoded_rows.T
+        a = b
+    return SweepShard(
+        start_chunk=start_chunk, stop_chunk=stop_chunk, accumulators=[acc.state() for acc in accumulators],
+        wrong_counts=wrong_counts, decoded=decoded, latent_sumsq=sumsq,
+        decoded_chunks=(stop_chunk - start_chunk) * per_chunk, elapsed_s=time.perf_counter() - started,
+    )
+
+
+def merge_shards(
+    plan: SweepPlan,
+    shards: Sequence[SweepShard],
+    chunks: Chunks,
+    codec,
+    text_source: str = "",
+    elapsed_s: float | None = None,
+) -> SweepResult:
+    """The SweepResult of shards that together cover the planned text once (in any order): counts
+    exactly the one-process sweep's, sums to float rounding. `codec` gives the provenance and token texts."""
+    codec = opened(codec)
+    shards = sorted(shards, key=lambda sh: sh.start_chunk)
+    edge = 0
+    for sh in shards:
+        if sh.start_chunk != edge:
+            raise ChunkscopeError(f"the shards of the sweep of {plan.codec_name} do not cover chunks {edge}..{sh.start_chunk} exactly once.")
+        edge = sh.stop_chunk
+    if edge != plan.n_chunks:
+        raise ChunkscopeError(f"the shards of the sweep of {plan.codec_name} stop at chunk {edge} of {plan.n_chunks}.")
+    if chunks.text_sha256 != plan.text_sha256:
+        raise SettingsError("the text given to merge is not the text the sweep was planned for.")
+    settings, sigmas = plan.settings, plan.settings.sigmas
+    accumulators = [SigmaAccumulator.from_state(st) for st in shards[0].accumulators]
+    for sh in shards[1:]:
+        for acc, st in zip(accumulators, sh.accumulators):
+            acc.merge(SigmaAccumulator.from_state(st))
+    if len(shards) == 1:
+        wrong_counts, decoded = shards[0].wrong_counts, shards[0].decoded
+    else:
+        wrong_counts = np.empty((plan.n_tokens, len(sigmas)), dtype=shards[0].wrong_counts.dtype)
+        decoded = np.empty((plan.n_tokens, len(sigmas)), dtype=shards[0].decoded.dtype)
+        for sh in shards:
+            t0 = sh.start_chunk * plan.chunk_size
+            wrong_counts[t0 : t0 + len(sh.wrong_counts)] = sh.wrong_counts
+            decoded[t0 : t0 + len(sh.decoded)] = sh.decoded
+    if plan.latent_rms is not None:
+        latent_rms = plan.latent_rms
+    else:
+        latent_rms = LatentScale(sum(sh.latent_sumsq for sh in shards), plan.n_chunks).latent_rms
     curves = [acc.compute() for acc in accumulators]
-    tolerances, loss_tolerances = tolerances_of(sigmas, [c.token_accuracy for c in curves], chunks.num_tokens)
-    elapsed = time.perf_counter() - started
+    tolerances, loss_tolerances = tolerances_of(sigmas, [c.token_accuracy for c in curves], plan.n_tokens)
+    elapsed = elapsed_s if elapsed_s is not None else sum(sh.elapsed_s for sh in shards)
+    decoded_chunks = sum(sh.decoded_chunks for sh in shards)
     prov = provenance(codec, chunks, settings, text_source)
     prov["elapsed_s"] = elapsed
-    prov["decoded_chunks"] = n_chunks * repeats * n_sigma
+    prov["decoded_chunks"] = decoded_chunks
     return SweepResult(
         settings=settings,
         provenance=prov,
@@ -464,9 +697,27 @@ def run_sweep(
         chunks=chunks,
         wrong_counts=wrong_counts,
         decoded=decoded,
-        critical_sigma=critical_sigmas(sigmas, wrong_counts, repeats),
-        latent_rms=encoded.latent_rms,
+        critical_sigma=critical_sigmas(sigmas, wrong_counts, settings.repeats),
+        latent_rms=latent_rms,
         elapsed_s=elapsed,
-        decoded_chunks=n_chunks * repeats * n_sigma,
+        decoded_chunks=decoded_chunks,
         token_text=token_texts(codec.tokenizer, chunks.token_ids, decoded, vocab_size=codec.vocab_size),
     )
+
+
+def run_sweep(
+    codec,
+    chunks: Chunks,
+    settings: SweepSettings = SweepSettings(),
+    progress: Progress | None = None,
+    should_stop: ShouldStop | None = None,
+    encoded: Encoded | None = None,
+    text_source: str = "",
+) -> SweepResult:
+    """Sweep one codec over one text, in this process: plan, one shard, merge.
+    Raises SweepCancelled (and returns nothing) if stopped."""
+    started = time.perf_counter()
+    codec = opened(codec)
+    plan = plan_sweep(codec, chunks, settings, encoded=encoded, should_stop=should_stop)
+    shard = sweep_shard(codec, chunks, plan, 0, plan.n_chunks, should_stop=should_stop, progress=progress, encoded=encoded)
+    return merge_shards(plan, [shard], chunks, codec, text_source, elapsed_s=time.perf_counter() - started)
