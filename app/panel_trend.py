@@ -29,6 +29,7 @@ from core.engine.tolerance import (
     ABSOLUTE, BELOW_AT_ZERO, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, UNRESOLVABLE, level_name, tolerance_text,
 )
 from core.analyses.trend import TrendPoint, checkpoints_in, sort_points, trend
+from core.engine.cluster import Where
 
 DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 12, "spacing": "log", "zero": True, "repeats": DEFAULT_REPEATS,
             "noise": DEFAULT_NOISE, "seed": DEFAULT_SEED}
@@ -53,9 +54,10 @@ class _Cell(QTableWidgetItem):
         return self.text() < other.text()
 
 
-def _trend(task: Task, folder: str, text: str, settings: SweepSettings, source: str) -> list[TrendPoint]:
+def _trend(task: Task, folder: str, text: str, settings: SweepSettings, source: str, where: Where = Where()) -> list[TrendPoint]:
     points = []
-    for point in trend(folder, text, settings, text_source=source, should_stop=task.should_stop, progress=task.report):
+    for point in trend(folder, text, settings, text_source=source, should_stop=task.should_stop, progress=task.report,
+                       where=where):
         points.append(point)
         task.partial.emit(point)
     return points
@@ -66,6 +68,8 @@ class TrendPanel(QWidget):
 
     The window feeds the evaluation text with `set_text`; `run_folder(path)` (or the Choose
     folder button) measures every checkpoint in it; `set_points` shows saved points."""
+
+    where_of = Where  # where the sweeps run: app/run_on.py points this at the window's setting
 
     error = Signal(str)
     point_added = Signal(object)  # a TrendPoint, as soon as it is measured
@@ -206,7 +210,7 @@ class TrendPanel(QWidget):
         self.points = []
         self.folder_label.setText(f"{folder}  ·  {len(checkpoints)} checkpoints")
         self.folder_label.setToolTip(folder)
-        task = Task("the training-run trend", _trend, folder, self.text, settings, self.text_source)
+        task = Task("the training-run trend", _trend, folder, self.text, settings, self.text_source, self.where_of())
         self.runs.start(task, progress=self._progress, partial=self._point, finished=self._finished,
                         failed=self._failed, cancelled=self._cancelled)
         self._expected = len(checkpoints)

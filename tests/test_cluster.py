@@ -229,6 +229,30 @@ def test_cancel_stops_the_shards_on_the_cluster(cluster, where, tmp_path):
     assert started
 
 
+def test_the_workbench_runs_its_sweeps_where_the_setting_says(window, where, qtbot):
+    from app.run_on import RunOnDialog, where_from_setting
+
+    sweep_menu = next(a.menu() for a in window.menuBar().actions() if a.text() == "&Sweep")
+    assert window.run_on.action in sweep_menu.actions()
+    window.run_on.set(where)
+    assert where_from_setting(window.settings.value("run_on")) == where  # kept between sessions
+    assert RunOnDialog(where, window).where() == where  # the dialog opens on the current choice
+    bench = window.workbench
+    bench.set_text(TEXT, "held-out")
+    qtbot.waitUntil(lambda: bench.entries and all(e.ready for e in bench.entries.values()), timeout=60_000)
+    path = next(p for p in bench.entries if p.endswith("plain.safetensors"))
+    entry = bench.entry(path)
+    progress = []
+    bench.sweep_progress.connect(lambda p, done, total: progress.append((done, total)))
+    with qtbot.waitSignal(bench.sweep_ended, timeout=60_000, check_params_cb=lambda p, how: p == path) as ended:
+        assert bench.start_sweep(SETTINGS, path)
+    assert ended.args[1] == "done"
+    assert progress and progress[-1][0] == progress[-1][1] >= 2  # one step per finished shard
+    assert entry.sweep.provenance["ran_on"]["where"] == where.label()
+    assert_same_sweep(run_sweep(entry.codec, entry.chunks, SETTINGS, encoded=entry.encoded), entry.sweep)
+    window.run_on.set(Where())
+
+
 def test_a_worker_killed_mid_sweep_leaves_the_result_identical(cluster, where, tmp_path, one_process):
     local, client = cluster
     ckpt = slow_checkpoint(tmp_path, "slow", PLAIN, 0.4)

@@ -98,9 +98,20 @@ def cluster_client(where: Where) -> Iterator[Any]:
         finally:
             client.close()
         return
-    cluster = distributed.LocalCluster(
-        n_workers=where.workers, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=logging.ERROR,
-    )
+    import signal
+    import threading
+
+    # Ctrl-C in a terminal reaches the whole process group: the worker processes start with it
+    # ignored (an ignored signal stays ignored in a child), so only this process stops, and cancels them.
+    main = threading.current_thread() is threading.main_thread()
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN) if main else None
+    try:
+        cluster = distributed.LocalCluster(
+            n_workers=where.workers, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=logging.ERROR,
+        )
+    finally:
+        if main:
+            signal.signal(signal.SIGINT, previous)
     try:
         client = distributed.Client(cluster, set_as_default=False)
         try:
@@ -144,6 +155,8 @@ def codec_ticket(codec, adapter: str | None = None) -> CodecTicket:
         raise ClusterError(f"{codec.name} was not opened from a file, so the cluster's workers cannot open it.")
     ticket_adapter = None
     if codec.source.opened_as == "adapter":
+        if not adapter:  # the adapter recorded when it was opened (its load function, unless FILE.py:FUNC was named)
+            adapter = codec.source.adapter.removeprefix("entry point ")
         if not adapter:
             raise ClusterError(f"{codec.path} was opened through an adapter, but none was named for the workers.")
         from core.codecs.adapter import parse_spec
