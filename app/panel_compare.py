@@ -27,6 +27,7 @@ from app.workers import LatestTask, Runner, Task
 from core.codecs.contract import opened
 from core.analyses.compare import COMPARISON_NOISES, Comparison, compare_codecs
 from core.analyses.compare_view import SideBySide
+from core.engine.cluster import Where
 from core.errors import SettingsError
 from core.outputs.report import provenance_caption
 from core.engine.noise import NOISE_MODELS
@@ -44,10 +45,10 @@ def _swatch(colour: str, size: int = 10) -> QIcon:
 
 
 def _compare(task: Task, codecs: list, text: str, sigmas: tuple[float, ...], repeats: int, seed: int, main_noise: str,
-             source: str) -> Comparison:
+             source: str, where: Where = Where()) -> Comparison:
     return compare_codecs(
         codecs, text, sigmas=sigmas, repeats=repeats, seed=seed, main_noise=main_noise, text_source=source,
-        progress=task.report, should_stop=task.should_stop,
+        progress=task.report, should_stop=task.should_stop, where=where,
         on_sweep=lambda noise, result: task.partial.emit(f"{result.codec_name} swept under {noise} noise"),
     )
 
@@ -57,6 +58,8 @@ class ComparePanel(QWidget):
 
     The window feeds it with `set_inputs(codecs, text, text_source)` whenever what is loaded
     changes, and shows `error` messages verbatim. `set_comparison` shows a saved result."""
+
+    where_of = Where  # where the sweeps run: app/run_on.py points this at the window's setting
 
     error = Signal(str)
     comparison_ready = Signal(object)  # the Comparison just computed
@@ -255,7 +258,7 @@ class ComparePanel(QWidget):
         key = self._inputs_key(codecs)
         s = self.settings_dict()
         task = Task("the comparison", _compare, codecs, self.text, sigmas, s["repeats"], s["seed"], s["main_noise"],
-                    self.text_source)
+                    self.text_source, self.where_of())
         self.runs.start(task, progress=self._progress, partial=self._partial,
                         finished=lambda result, k=key: self._finished(k, result), failed=self._failed,
                         cancelled=self._cancelled)

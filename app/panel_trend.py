@@ -30,6 +30,7 @@ from core.engine.tolerance import (
     ABSOLUTE, BELOW_AT_ZERO, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, UNRESOLVABLE, level_name, tolerance_text,
 )
 from core.analyses.trend import TrendPoint, checkpoints_in, sort_points, trend
+from core.engine.cluster import Where
 
 DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 12, "spacing": "log", "zero": True, "repeats": DEFAULT_REPEATS,
             "noise": DEFAULT_NOISE, "seed": DEFAULT_SEED}
@@ -55,13 +56,13 @@ class _Cell(QTableWidgetItem):
 
 
 def _trend(task: Task, folder: str, text: str, settings: SweepSettings, source: str, adapter: str = "",
-           adapter_sha: str = "") -> list[TrendPoint]:
+           adapter_sha: str = "", where: Where = Where()) -> list[TrendPoint]:
     if adapter and adapter_sha and Path(adapter).is_file() and file_sha256(adapter) != adapter_sha:
         raise ChunkscopeError(f"The adapter {adapter} changed after you allowed it to run; choose it again to be asked "
                               "about the new file.")
     points = []
     for point in trend(folder, text, settings, text_source=source, should_stop=task.should_stop, progress=task.report,
-                       adapter=adapter or None):
+                       adapter=adapter or None, where=where):
         points.append(point)
         task.partial.emit(point)
     return points
@@ -72,6 +73,8 @@ class TrendPanel(QWidget):
 
     The window feeds the evaluation text with `set_text`; `run_folder(path)` (or the Choose
     folder button) measures every checkpoint in it; `set_points` shows saved points."""
+
+    where_of = Where  # where the sweeps run: app/run_on.py points this at the window's setting
 
     error = Signal(str)
     point_added = Signal(object)  # a TrendPoint, as soon as it is measured
@@ -225,7 +228,7 @@ class TrendPanel(QWidget):
         self.folder_label.setText(f"{folder}  ·  {len(checkpoints)} checkpoints{through}")
         self.folder_label.setToolTip(folder + (f"\nopened by the adapter {adapter}" if adapter else ""))
         task = Task("the training-run trend", _trend, folder, self.text, settings, self.text_source, adapter,
-                    adapter_sha if not adapter_sha.startswith("entry point") else "")
+                    adapter_sha if not adapter_sha.startswith("entry point") else "", self.where_of())
         self.runs.start(task, progress=self._progress, partial=self._point, finished=self._finished,
                         failed=self._failed, cancelled=self._cancelled)
         self._expected = len(checkpoints)

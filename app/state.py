@@ -17,6 +17,7 @@ from core.codecs.open import open_codec
 from core.errors import CheckpointError, ChunkscopeError, TextError
 from core.engine.health import LatentHealth, latent_health
 from core.engine.noise import Encoded, encode_chunks
+from core.engine.cluster import SweepJob, Where, run_sweeps
 from core.engine.sweep import SweepResult, SweepSettings, run_sweep
 from core.engine.text import DEMO_TEXT_PATH, Chunks, check_text, chunk_text, load_text, text_sha256
 
@@ -89,7 +90,12 @@ def _health(task: Task, codec: OpenedCodec, chunks: Chunks, encoded: Encoded):
     return latent_health(codec, chunks, encoded=encoded, should_stop=task.should_stop)
 
 
-def _sweep(task: Task, codec: OpenedCodec, chunks: Chunks, encoded: Encoded, settings: SweepSettings, source: str):
+def _sweep(task: Task, codec: OpenedCodec, chunks: Chunks, encoded: Encoded, settings: SweepSettings, source: str,
+           where: Where = Where()):
+    if not where.here:  # shards on a Dask cluster (the "Run on" setting); progress counts shards
+        (result,) = run_sweeps([SweepJob(codec, chunks, settings, source, encoded)], where, progress=task.report,
+                               should_stop=task.should_stop)
+        return result
     return run_sweep(codec, chunks, settings, progress=task.report, should_stop=task.should_stop,
                      encoded=encoded, text_source=source)
 
@@ -104,6 +110,7 @@ class Workbench(QObject):
     error = Signal(str)
     opened = Signal(str)  # path: the checkpoint's weights loaded
     open_failed = Signal(str)  # path: the checkpoint could not be opened
+    where_of = Where  # where sweeps run: app/run_on.py points this at the window's setting
 
     def __init__(self, runner: Runner, parent: QObject | None = None):
         super().__init__(parent)
@@ -286,7 +293,8 @@ class Workbench(QObject):
             self.error.emit(str(exc))
             return False
         sha = self.text_sha
-        task = Task(f"the sweep of {entry.name}", _sweep, entry.codec, entry.chunks, entry.encoded, settings, self.text_source)
+        task = Task(f"the sweep of {entry.name}", _sweep, entry.codec, entry.chunks, entry.encoded, settings, self.text_source,
+                    self.where_of())
         task.progress.connect(lambda done, total, p=path: self.sweep_progress.emit(p, done, total))
         task.finished.connect(lambda result, p=path, s=sha: self._swept(p, s, result))
         task.failed.connect(lambda message, p=path: self._sweep_over(p, message))

@@ -15,6 +15,7 @@ from PySide6.QtWidgets import (
 from app import adapters, report_actions
 from app.messages import error_text
 from app.panel_compare import ComparePanel
+from app.run_on import RunOn
 from app.panel_latent import LatentPanel
 from app.panel_live import LivePanel
 from app.panel_models import ModelsPanel
@@ -167,6 +168,7 @@ class MainWindow(QMainWindow):
         self.splitter.setChildrenCollapsible(False)
         self.setCentralWidget(self.splitter)
         self._build_menus()
+        self.run_on = RunOn(self)  # where the sweep, compare and training-run views do their work
         self.statusBar().showMessage("ready")
         self._restore()
         if load_defaults:

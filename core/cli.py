@@ -68,8 +68,9 @@ ADAPTER_HELP = (
 )
 
 
-def announce_adapter(adapter: str | None, paths, stream=None) -> None:
-    """Before any adapter code runs: one line naming the file whose code runs, and its sha256."""
+def announce_adapter(adapter: str | None, paths, stream=None, where=None) -> None:
+    """Before any adapter code runs: one line naming the file whose code runs, and its sha256
+    (and, on a cluster, that it runs on every worker too)."""
     if not adapter:
         return
     from core.codecs.adapter import adapter_identity
@@ -78,15 +79,42 @@ def announce_adapter(adapter: str | None, paths, stream=None) -> None:
     if not any(Path(p).exists() and uses_adapter(p) for p in paths):  # a missing checkpoint is refused before any code runs
         return
     what, sha = adapter_identity(adapter)
-    print(f"chunkscope: running the adapter code in {what}" + (f" (sha256 {sha})" if sha else ""), file=stream or sys.stderr)
+    workers = f", here and on every worker of {where.label()}" if where is not None and not where.here else ""
+    print(f"chunkscope: running the adapter code in {what}" + (f" (sha256 {sha})" if sha else "") + workers,
+          file=stream or sys.stderr)
 
 
-def open_checkpoints(paths, adapter: str | None = None) -> list:
+def open_checkpoints(paths, adapter: str | None = None, where=None) -> list:
     from core.codecs.open import open_checkpoint
 
     paths = list(paths)
-    announce_adapter(adapter, paths)
+    announce_adapter(adapter, paths, where=where)
     return [open_checkpoint(p, adapter) for p in paths]
+
+
+def add_cluster_arguments(p: argparse.ArgumentParser) -> None:
+    """--workers / --cluster: where a command's shardable work runs (see core.engine.cluster).
+    Any command whose work is made of sweeps can take them; pass `where_from_args(args)` on."""
+    group = p.add_mutually_exclusive_group()
+    group.add_argument("--workers", type=int, metavar="N",
+                       help="shard the work over a local Dask cluster of N processes, one thread each (needs chunkscope[cluster])")
+    group.add_argument("--cluster", metavar="ADDRESS",
+                       help="shard the work over a running Dask scheduler, e.g. tcp://10.1.2.3:8786; its workers open the "
+                            "checkpoints from the same paths (needs chunkscope[cluster])")
+
+
+def where_from_args(args: argparse.Namespace):
+    """Where the work runs, checked before any work (without distributed: what to install)."""
+    from core.engine.cluster import Where
+    from core.errors import SettingsError
+
+    workers = getattr(args, "workers", None)
+    if workers is not None and workers < 1:
+        raise SettingsError(f"--workers needs a whole number >= 1, not {workers}.")
+    where = Where(workers=workers or 0, address=getattr(args, "cluster", None) or "").validated()
+    if not where.here:
+        print(f"chunkscope: sharding the work over {where.label()}", file=sys.stderr)
+    return where
 
 
 def _fmt(value) -> str:
@@ -215,11 +243,12 @@ def cmd_sweep(args: argparse.Namespace) -> int:
     from core.outputs.files import OutputRefusedError, Outputs
 
     settings = _settings_from_args(args)
+    where = where_from_args(args)
     out = Path(args.out)
     if out.exists() and not out.is_dir():
         raise OutputRefusedError(f"{out} is a file, and sweep results go into a folder; choose another --out.")
     text, source = _load_text_arg(args.text)
-    codecs = open_checkpoints(args.checkpoints, args.adapter)
+    codecs = open_checkpoints(args.checkpoints, args.adapter, where)
     names = [c.name for c in codecs]
     if len(set(names)) != len(names):
         raise ChunkscopeError("two checkpoints share a file name, so their output folders would collide; rename one.")
@@ -228,12 +257,22 @@ def cmd_sweep(args: argparse.Namespace) -> int:
     for codec in codecs:
         settings.validated(codec)
     results = []
-    for codec in codecs:
-        chunks = chunk_text(text, codec, source)
-        progress = TerminalProgress(f"{codec.name[:16]:<16}") if not args.quiet else None
-        result = run_sweep(codec, chunks, settings, progress=progress, text_source=source)
-        results.append(result)
-        print(f"swept {codec.name} ({result.decoded_chunks:,} decoded chunks in {result.elapsed_s:.1f}s)", file=sys.stderr)
+    if where.here:
+        for codec in codecs:
+            chunks = chunk_text(text, codec, source)
+            progress = TerminalProgress(f"{codec.name[:16]:<16}") if not args.quiet else None
+            result = run_sweep(codec, chunks, settings, progress=progress, text_source=source)
+            results.append(result)
+            print(f"swept {codec.name} ({result.decoded_chunks:,} decoded chunks in {result.elapsed_s:.1f}s)", file=sys.stderr)
+    else:
+        from core.engine.cluster import SweepJob, run_sweeps
+        from core.codecs.open import uses_adapter
+
+        jobs = [SweepJob(c, chunk_text(text, c, source), settings, source, adapter=args.adapter if args.adapter and uses_adapter(p) else None)
+                for c, p in zip(codecs, args.checkpoints)]
+        results = run_sweeps(jobs, where, progress=None if args.quiet else TerminalProgress(f"{'shards':<16}"))
+        for result in results:
+            print(f"swept {result.codec_name} ({result.decoded_chunks:,} decoded chunks, {result.elapsed_s:.1f}s)", file=sys.stderr)
     with Outputs(args.force) as outputs:  # every checkpoint's folder appears together, or none
         for result, target in zip(results, targets):
             result.write_into(outputs.folder(target, SWEEP_FOLDER))
@@ -270,28 +309,30 @@ def print_comparison(comparison, stream=None) -> None:
         print(f"{what}: significant at {SIGNIFICANT} at σ = {where}" + (" …" if len(real) > 8 else ""), file=stream)
 
 
-def _comparison_from_args(args, codecs, text, source, progress=None):
+def _comparison_from_args(args, codecs, text, source, progress=None, where=None):
     from core.analyses.compare import compare_codecs
     from core.engine.sweep import parse_sigmas
 
     settings = _settings_from_args(args)
     absolute = parse_sigmas(args.abs_sigmas) if getattr(args, "abs_sigmas", None) else None
     return compare_codecs(codecs, text, sigmas=settings.sigmas, absolute_sigmas=absolute, repeats=settings.repeats,
-                          seed=settings.seed, main_noise=settings.noise, text_source=source, progress=progress)
+                          seed=settings.seed, main_noise=settings.noise, text_source=source, progress=progress,
+                          where=where, adapter=args.adapter)
 
 
 def cmd_compare(args: argparse.Namespace) -> int:
     from core.analyses.compare import COMPARE_FOLDER
 
     _settings_from_args(args)
+    where = where_from_args(args)
     out = Path(args.out)
     _check_outputs([out], args.force, COMPARE_FOLDER, folder=True)
     text, source = _load_text_arg(args.text)
-    codecs = open_checkpoints(args.checkpoints, args.adapter)
+    codecs = open_checkpoints(args.checkpoints, args.adapter, where)
     if len({c.name for c in codecs}) != len(codecs):
         raise ChunkscopeError("two checkpoints share a file name; rename one so the results can be told apart.")
-    progress = None if args.quiet else TerminalProgress("compare")
-    comparison = _comparison_from_args(args, codecs, text, source, progress)
+    progress = None if args.quiet else TerminalProgress("compare" if where.here else "compare shards")
+    comparison = _comparison_from_args(args, codecs, text, source, progress, where)
     comparison.write(out, force=args.force)
     print(f"wrote {out}/ (compare.json, tolerances.csv, paired.csv, sweeps/)", file=sys.stderr)
     print_comparison(comparison)
@@ -303,6 +344,7 @@ def cmd_trend(args: argparse.Namespace) -> int:
     from core.outputs.files import OutputExistsError
 
     settings = _settings_from_args(args)
+    where = where_from_args(args)
     paths = checkpoints_in(args.folder, args.adapter)  # a missing or empty folder is said before the table starts
     out = Path(args.out) if args.out else None
     if out is not None:
@@ -313,13 +355,13 @@ def cmd_trend(args: argparse.Namespace) -> int:
     text, source = _load_text_arg(args.text)
     from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, level_percent
 
-    announce_adapter(args.adapter, paths)
+    announce_adapter(args.adapter, paths, where=where)
     points = []
     levels = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
     print(f"{'':<48}{'accuracy ≥':<34}loss ≤")
     print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[:3])
           + "  " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[3:]))
-    for point in trend(args.folder, text, settings, text_source=source, adapter=args.adapter):
+    for point in trend(args.folder, text, settings, text_source=source, adapter=args.adapter, where=where):
         points.append(point)
         if point.error:
             print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} failed: {point.error}")
@@ -519,6 +561,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_sweep_arguments(p)
     p.add_argument("--out", default="results", help="output folder (default: results)")
     p.add_argument("--force", action="store_true", help="replace existing output folders")
+    add_cluster_arguments(p)
     p.set_defaults(func=cmd_sweep)
 
     from core.training.recipes import add_arguments as add_train_arguments  # torch-free: --help stays fast
@@ -534,6 +577,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--abs-sigmas", help="grid for the isotropic (absolute) sweep (default: the relative grid times the largest latent RMS)")
     p.add_argument("--out", default="comparison", help="output folder (default: comparison)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    add_cluster_arguments(p)
     p.set_defaults(func=cmd_compare)
 
     p = sub.add_parser("trend", help="tolerance through a training run (a folder of checkpoints)", description="Sweep every checkpoint in a folder and report accuracy at sigma 0 and the 99.9/99/90 % tolerances against training step (from each card, else from the file name).")
@@ -542,6 +586,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_sweep_arguments(p)
     p.add_argument("--out", help="write trend.csv and trend.json into this folder")
     p.add_argument("--force", action="store_true", help="replace existing output files")
+    add_cluster_arguments(p)
     p.set_defaults(func=cmd_trend)
 
     p = sub.add_parser("report", help="one self-contained HTML report", description="Write one self-contained HTML file (inline plots, no outside links) from checkpoints (swept or compared on the text), or from folders written by 'sweep' or 'compare'.")

@@ -289,8 +289,13 @@ def compare_codecs(
     progress: Callable[[int, int], None] | None = None,
     should_stop: Callable[[], bool] | None = None,
     on_sweep: Callable[[str, SweepResult], None] | None = None,
+    where=None,
+    adapter: str | None = None,
 ) -> Comparison:
-    """Sweep every codec under data-scale and isotropic noise on the same text and seed."""
+    """Sweep every codec under data-scale and isotropic noise on the same text and seed.
+
+    `where` (a core.engine.cluster.Where) shards the sweeps over a Dask cluster, whose workers
+    open each checkpoint from its path (through `adapter`, the spec the codecs were opened with)."""
     codecs = [opened(c) for c in codecs]
     if len(codecs) < 2:
         raise ChunkscopeError("a comparison needs at least two checkpoints.")
@@ -314,7 +319,19 @@ def compare_codecs(
             progress(offset[0] + done_in_sweep * chunks_in_sweep * grid * repeats // max(total_in_sweep, 1), total)
 
     results: dict[str, list[SweepResult]] = {"data-scale": [], "isotropic": []}
-    for settings in (relative, absolute):
+    if where is not None and not where.here:
+        from core.engine.cluster import SweepJob, sweeps_as_completed
+
+        jobs = [SweepJob(codec, chunks, settings, text_source, enc, adapter)
+                for settings in (relative, absolute) for codec, chunks, enc in zip(codecs, chunked, encoded)]
+        done: list = [None] * len(jobs)
+        for i, result in sweeps_as_completed(jobs, where, progress, should_stop):
+            done[i] = result
+            if on_sweep is not None:
+                on_sweep(jobs[i].settings.noise, result)
+        for job, result in zip(jobs, done):
+            results[job.settings.noise].append(result)
+    for settings in (relative, absolute) if where is None or where.here else ():
         for codec, chunks, enc in zip(codecs, chunked, encoded):
             n_grid = len(settings.sigmas)
             result = run_sweep(

@@ -98,25 +98,25 @@ def trend(
     should_stop: Callable[[], bool] | None = None,
     progress: Callable[[int, int], None] | None = None,
     adapter: str | None = None,
+    where=None,
 ) -> Iterator[TrendPoint]:
     """Yield one point per checkpoint as it finishes; a bad checkpoint yields a point with `error`.
 
-    `adapter` opens every checkpoint that is not built-in or ONNX (`open_checkpoint`)."""
+    `adapter` opens every checkpoint that is not built-in or ONNX (`open_checkpoint`). `where`
+    (a core.engine.cluster.Where) shards every checkpoint's sweep over a Dask cluster; points then
+    come in the order their sweeps finish."""
     paths = checkpoints_in(folder, adapter)
+    if where is not None and not where.here:
+        yield from _trend_on_cluster(paths, text, settings, text_source, should_stop, progress, adapter, where)
+        return
     for index, path in enumerate(paths):
         if should_stop is not None and should_stop():
             raise SweepCancelled()
-        try:
-            codec = open_checkpoint(path, adapter)
-        except ChunkscopeError as exc:
-            step = step_from_name(path.stem)
-            yield TrendPoint(str(path), path.stem, step, "file name" if step is not None else "none", error=str(exc))
+        opened = _opened_point(path, adapter)
+        if isinstance(opened, TrendPoint):
+            yield opened
             continue
-        step = step_from_card(codec.card)
-        source = "card"
-        if step is None:
-            step = step_from_name(path.stem)
-            source = "file name" if step is not None else "none"
+        codec, step, source = opened
         try:
             chunks = chunk_text(text, codec, text_source or "the text")
             result = run_sweep(
@@ -126,12 +126,56 @@ def trend(
         except ChunkscopeError as exc:
             yield TrendPoint(str(path), codec.name, step, source, sha256=codec.sha256, error=str(exc))
             continue
-        acc0 = result.curves[0].token_accuracy if result.sigmas[0] == 0 else None
-        yield TrendPoint(
-            str(path), codec.name, step, source, sha256=codec.sha256, accuracy_at_zero=acc0,
-            tolerances=list(result.tolerances), loss_tolerances=list(result.loss_tolerances),
-            latent_rms=result.latent_rms, result=result,
-        )
+        yield _point_of(path, codec, step, source, result)
+
+
+def _opened_point(path: Path, adapter: str | None):
+    """(codec, step, step source), or a TrendPoint with the error when the checkpoint does not open."""
+    try:
+        codec = open_checkpoint(path, adapter)
+    except ChunkscopeError as exc:
+        step = step_from_name(path.stem)
+        return TrendPoint(str(path), path.stem, step, "file name" if step is not None else "none", error=str(exc))
+    step, source = step_from_card(codec.card), "card"
+    if step is None:
+        step = step_from_name(path.stem)
+        source = "file name" if step is not None else "none"
+    return codec, step, source
+
+
+def _point_of(path: Path, codec, step, source: str, result: SweepResult) -> TrendPoint:
+    acc0 = result.curves[0].token_accuracy if result.sigmas[0] == 0 else None
+    return TrendPoint(
+        str(path), codec.name, step, source, sha256=codec.sha256, accuracy_at_zero=acc0,
+        tolerances=list(result.tolerances), loss_tolerances=list(result.loss_tolerances),
+        latent_rms=result.latent_rms, result=result,
+    )
+
+
+def _trend_on_cluster(paths, text, settings, text_source, should_stop, progress, adapter, where) -> Iterator[TrendPoint]:
+    from core.engine.cluster import SweepJob, sweeps_as_completed
+    from core.codecs.open import uses_adapter
+
+    jobs, about = [], []
+    for path in paths:
+        if should_stop is not None and should_stop():
+            raise SweepCancelled()
+        opened = _opened_point(path, adapter)
+        if isinstance(opened, TrendPoint):
+            yield opened
+            continue
+        codec, step, source = opened
+        try:
+            checked = settings.validated(codec)
+            chunks = chunk_text(text, codec, text_source or "the text")
+        except ChunkscopeError as exc:
+            yield TrendPoint(str(path), codec.name, step, source, sha256=codec.sha256, error=str(exc))
+            continue
+        jobs.append(SweepJob(codec, chunks, checked, text_source, adapter=adapter if adapter and uses_adapter(path) else None))
+        about.append((path, codec, step, source))
+    for i, result in sweeps_as_completed(jobs, where, progress, should_stop):
+        jobs[i] = None  # the client keeps the point, not the codec
+        yield _point_of(*about[i], result)
 
 
 def sort_points(points: list[TrendPoint]) -> list[TrendPoint]:
