@@ -70,6 +70,7 @@ class RunAdapterQuestion(QDialog):
             grid.addWidget(shown, row, 1)
         grid.setColumnStretch(1, 1)
         layout.addLayout(grid)
+        layout.addSpacing(4)
         note = QLabel("The code runs with your permissions and can do anything you can. Run it only if you wrote it "
                       "or trust where it came from. Your answer is remembered for this exact file: if it changes, "
                       "you are asked again.")
