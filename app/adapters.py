@@ -20,6 +20,7 @@ from PySide6.QtWidgets import (
 
 from app.style import mono_font
 from core.codecs.adapter import adapter_identity, parse_spec
+from core.codecs.checkpoint import file_sha256
 
 TRUSTED_KEY = "adapters/trusted"  # sha256 -> the path it was allowed at
 RUNS_CODE = ("An adapter is a Python file of your own: opening a checkpoint with it runs the code in that file, "
@@ -70,6 +71,7 @@ class RunAdapterQuestion(QDialog):
             grid.addWidget(shown, row, 1)
         grid.setColumnStretch(1, 1)
         layout.addLayout(grid)
+        layout.addSpacing(4)
         note = QLabel("The code runs with your permissions and can do anything you can. Run it only if you wrote it "
                       "or trust where it came from. Your answer is remembered for this exact file: if it changes, "
                       "you are asked again.")
@@ -103,10 +105,26 @@ def allowed(parent: QWidget | None, settings: QSettings, adapter: str) -> str:
     return sha
 
 
-def adapter_file(adapter: str) -> str:
-    """The file (or entry point) an adapter spec names, as recorded in a workspace."""
+def changed_since(adapter: str, sha256: str) -> bool:
+    """Whether the adapter file no longer has the sha256 the user allowed (checked in the worker,
+    just before its code runs)."""
     spec = parse_spec(adapter)
-    return str(spec.file) if spec.file else spec.label
+    return bool(sha256 and spec.file is not None and spec.file.is_file() and file_sha256(spec.file) != sha256)
+
+
+ENTRY_POINT_LABEL = "entry point "  # how core's CodecSource names an installed adapter
+
+
+def adapter_file(adapter: str) -> str:
+    """What to open with: the adapter file's absolute path (and :FUNC), or an entry point's name;
+    also for what a workspace recorded (core writes an entry point as "entry point NAME")."""
+    adapter = str(adapter)
+    if adapter.startswith(ENTRY_POINT_LABEL):
+        adapter = adapter[len(ENTRY_POINT_LABEL):]
+    spec = parse_spec(adapter)
+    if spec.entry_point:
+        return spec.entry_point
+    return str(spec.file) + (f":{spec.function}" if spec.function != "load" else "")
 
 
 class OpenWithAdapterDialog(QDialog):

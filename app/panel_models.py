@@ -225,17 +225,20 @@ class ModelsPanel(QWidget):
         label.setObjectName("section")
         head.addWidget(label)
         head.addStretch(1)
+        layout.addLayout(head)
+        buttons = QHBoxLayout()  # a row of their own: the side panel is narrow
+        buttons.setSpacing(6)
         self.open_button = QPushButton("Open…")
         self.open_button.setToolTip("Open a checkpoint (.safetensors) or an ONNX codec's codec.json; you can also drop "
                                     "files and ONNX codec folders on the window")
         self.open_button.clicked.connect(self.open_requested)
-        head.addWidget(self.open_button)
-        self.adapter_button = QPushButton("With adapter…")
+        buttons.addWidget(self.open_button, 1)
+        self.adapter_button = QPushButton("Open with adapter…")
         self.adapter_button.setToolTip("Open your own model's checkpoint (a file or a folder) through a Python adapter "
                                        "file; this runs the code in that file, and you are asked before it first runs")
         self.adapter_button.clicked.connect(self.open_adapter_requested)
-        head.addWidget(self.adapter_button)
-        layout.addLayout(head)
+        buttons.addWidget(self.adapter_button, 1)
+        layout.addLayout(buttons)
 
         self.list = QListWidget()
         self.list.setObjectName("checkpoints")

@@ -361,9 +361,13 @@ class SweepPanel(QWidget):
         for plot in self.plots:  # not x-linked: pyqtgraph aligns linked views by screen position
             plot.getPlotItem().enableAutoRange(x=True)
         s = result.settings
+        def keep(*parts: str) -> str:  # a narrow header wraps between the parts, never inside one ("seed" | "0")
+            return " · ".join(part.replace(" ", "\u00a0") for part in parts)
+
         self.status.setText(
-            f"{result.codec_name} · {s.noise} noise ({sigma_unit(s.noise)}) · {len(s.sigmas)} σ × {s.repeats} repeats · seed {s.seed}\n"
-            f"latent RMS {result.latent_rms:.4g} · {result.decoded_chunks:,} chunks decoded in {result.elapsed_s:.1f} s"
+            keep(result.codec_name, f"{s.noise} noise ({sigma_unit(s.noise)})", f"{len(s.sigmas)} σ × {s.repeats} repeats",
+                 f"seed {s.seed}") + "\n"
+            + keep(f"latent RMS {result.latent_rms:.4g}", f"{result.decoded_chunks:,} chunks decoded in {result.elapsed_s:.1f} s")
         )
         self.readout.setText("hover a plot to read values · click to open that σ in the live view")
         self.plotted.emit()

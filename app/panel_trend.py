@@ -21,7 +21,7 @@ from app.controls import GridControls, caption, card, page_layout, run_controls
 from app.export import add_export_menu
 from app.style import LEVEL_PEN_STYLES, LEVEL_SYMBOLS, PALETTE, fmt_percent, legend, pen, plot_widget
 from app.workers import LatestTask, Runner, Task
-from core.codecs.checkpoint import file_sha256
+from app.adapters import changed_since
 from core.errors import ChunkscopeError
 from core.engine.noise import sigma_unit
 from core.engine.sweep import DEFAULT_NOISE, DEFAULT_REPEATS, DEFAULT_SEED, SweepSettings
@@ -57,7 +57,7 @@ class _Cell(QTableWidgetItem):
 
 def _trend(task: Task, folder: str, text: str, settings: SweepSettings, source: str, adapter: str = "",
            adapter_sha: str = "", where: Where = Where()) -> list[TrendPoint]:
-    if adapter and adapter_sha and Path(adapter).is_file() and file_sha256(adapter) != adapter_sha:
+    if adapter and changed_since(adapter, adapter_sha):
         raise ChunkscopeError(f"The adapter {adapter} changed after you allowed it to run; choose it again to be asked "
                               "about the new file.")
     points = []

@@ -10,7 +10,7 @@ from pathlib import Path
 
 from PySide6.QtCore import QObject, Signal
 
-from core.codecs.checkpoint import CheckpointInfo, file_sha256, read_checkpoint_info
+from core.codecs.checkpoint import CheckpointInfo, read_checkpoint_info
 from core.codecs.contract import OpenedCodec
 from core.codecs.onnx import MANIFEST, is_onnx_codec
 from core.codecs.open import open_codec
@@ -21,6 +21,7 @@ from core.engine.cluster import SweepJob, Where, run_sweeps
 from core.engine.sweep import SweepResult, SweepSettings, run_sweep
 from core.engine.text import DEMO_TEXT_PATH, Chunks, check_text, chunk_text, load_text, text_sha256
 
+from app.adapters import changed_since
 from app.workers import Runner, Task
 
 SAMPLES_ENV = "CHUNKSCOPE_SAMPLES"
@@ -70,7 +71,7 @@ class Entry:
 
 
 def _load_and_encode(task: Task, path: str, text: str, source: str, adapter: str = "", adapter_sha: str = ""):
-    if adapter and adapter_sha and Path(adapter).is_file() and file_sha256(adapter) != adapter_sha:
+    if adapter and changed_since(adapter, adapter_sha):
         raise ChunkscopeError(f"The adapter {adapter} changed after you allowed it to run; open the checkpoint with it "
                               "again to be asked about the new file.")
     codec = open_codec(path, adapter or None)

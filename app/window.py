@@ -307,11 +307,12 @@ class MainWindow(QMainWindow):
         if not Path(checkpoint).exists():
             self.show_error(f"{checkpoint} does not exist.")
             return False
+        adapter = adapters.adapter_file(adapter)
         sha = self.adapter_allowed(adapter)
         if not sha:
             return False
         self.settings.setValue("last_adapter", adapter)
-        self.workbench.open_checkpoint(checkpoint, select=select, adapter=adapters.adapter_file(adapter),
+        self.workbench.open_checkpoint(checkpoint, select=select, adapter=adapter,
                                        adapter_sha256=sha if not sha.startswith("entry point") else "")
         return True
 

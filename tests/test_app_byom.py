@@ -287,3 +287,17 @@ def test_a_training_run_of_the_users_checkpoints_through_one_adapter(qtbot, user
         assert "adapter my_codec.py" in win.trend.folder_label.text()
     finally:
         close(win)
+
+
+def test_what_the_window_opens_with_names_the_file_or_the_entry_point(tmp_path):
+    adapter = tmp_path / "mine.py"
+    adapter.write_text("def open_mine(path):\n    return None\n", encoding="utf-8")
+    assert app.adapters.adapter_file(str(adapter)) == str(adapter)
+    assert app.adapters.adapter_file(f"{adapter}:open_mine") == f"{adapter}:open_mine"
+    # an installed adapter, as typed and as a workspace records it (core's CodecSource label)
+    assert app.adapters.adapter_file("lab-codecs") == "lab-codecs"
+    assert app.adapters.adapter_file("entry point lab-codecs") == "lab-codecs"
+    sha = file_sha256(adapter)
+    assert not app.adapters.changed_since(f"{adapter}:open_mine", sha)
+    adapter.write_text("def open_mine(path):\n    return 1\n", encoding="utf-8")
+    assert app.adapters.changed_since(f"{adapter}:open_mine", sha)  # FILE.py:FUNC is checked too
