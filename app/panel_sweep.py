@@ -15,6 +15,7 @@ from app.state import Workbench
 from app.style import (
     LEVEL_PEN_STYLES, PALETTE, faded, fmt_percent, legend, log_ticks, pen, plot_widget, series_colours,
 )
+from core.engine.timeleft import TimeLeft, time_left_text
 from core.errors import SettingsError
 from core.engine.noise import NOISE_MODELS, sigma_unit
 from core.outputs.report import provenance_caption
@@ -200,7 +201,9 @@ class SweepPanel(QWidget):
         started = self.workbench.start_sweep(settings)
         if started:
             self.progress.setValue(0)
-            self.status.setText(f"sweeping {len(settings.sigmas)} σ × {settings.repeats} repeats…")
+            self._sweeping = f"sweeping {len(settings.sigmas)} σ × {settings.repeats} repeats…"
+            self._time_left = TimeLeft()
+            self.status.setText(self._sweeping)
         self._sync_buttons()
         return started
 
@@ -208,6 +211,10 @@ class SweepPanel(QWidget):
         if path == self.workbench.current:
             self.progress.setMaximum(max(total, 1))
             self.progress.setValue(done)
+            timer = getattr(self, "_time_left", None)
+            if timer is not None and done < total:
+                left = time_left_text(timer.update(done, total))
+                self.status.setText(self._sweeping + (f" {left}" if left else ""))
 
     def _ended(self, path: str, how: str) -> None:
         if path != self.workbench.current:

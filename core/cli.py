@@ -15,10 +15,8 @@ from core.errors import ChunkscopeError, SweepCancelled
 class TerminalProgress:
     """A tqdm progress bar on stderr, fed by the engine's `progress(done, total)` callbacks.
 
-    The time left is shown only once `ETA_AFTER` of the work is done: before that, an
-    estimate from the first few batches (which include warm-up) means nothing."""
-
-    ETA_AFTER = 0.05
+    The time left comes from core.engine.timeleft (the workbench shows the same estimate):
+    nothing before 5 % of the work is done, then the average rate since the first call."""
 
     def __init__(self, label: str, stream=None, mininterval: float | None = None):
         self.label = label
@@ -33,24 +31,23 @@ class TerminalProgress:
                 known = False
             self.size = {"dynamic_ncols": True} if known else {"ncols": 80, "nrows": 24}
         self.bar = None
-        self.eta_shown = False
+        self.time_left = None
 
-    _EARLY = "{desc} {percentage:5.1f}%|{bar}| {elapsed} elapsed"
-    _LATER = "{desc} {percentage:5.1f}%|{bar}| {elapsed} elapsed, {remaining} left"
+    _FORMAT = "{desc} {percentage:5.1f}%|{bar}| {elapsed} elapsed{postfix}"
 
     def __call__(self, done: int, total: int) -> None:
         from tqdm import tqdm
 
+        from core.engine.timeleft import TimeLeft, time_left_text
+
         if self.bar is None or self.bar.total != total:
             if self.bar is not None:
                 self.bar.close()
-            # smoothing=0: the rate is the average since the start, steadier than a moving average
             self.bar = tqdm(total=total, desc=self.label, file=self.stream, mininterval=self.mininterval, miniters=1,
-                            smoothing=0, bar_format=self._EARLY, leave=True, **self.size)
-            self.eta_shown = False
-        if not self.eta_shown and total and done / total >= self.ETA_AFTER:
-            self.bar.bar_format = self._LATER
-            self.eta_shown = True
+                            bar_format=self._FORMAT, leave=True, **self.size)
+            self.time_left = TimeLeft()
+        left = time_left_text(self.time_left.update(done, total))
+        self.bar.set_postfix_str(left, refresh=False)  # tqdm writes ", " before a postfix
         self.bar.update(done - self.bar.n)
         if done >= total:
             self.bar.close()

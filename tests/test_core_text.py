@@ -74,3 +74,49 @@ def test_byte_order_mark_is_dropped(tmp_path):
     path = tmp_path / "bom.txt"
     path.write_bytes("\ufeffhello".encode("utf-8"))
     assert load_text(path) == "hello"
+
+
+def test_a_long_text_tokenized_piece_by_piece_gives_the_whole_texts_tokens(tokenizer):
+    """Reference: the tokenizer library's own encoding of the whole text. Cuts fall only after a
+    newline between two non-space characters; the text also holds the cases where a cut would
+    change the pieces (spaces before a newline, blank lines, a newline before a space)."""
+    import numpy as np
+
+    from core.engine.text import _pieces, tokenize_with_spans
+
+    lines = ["Signal box 7: 06:45 held at Ober-Ränk.", "  indented line", "trailing spaces   ", "", "€14.20/t — coal",
+             "x", " leading space", "it's the 3rd time\t", "Δ = +3 %"]
+    text = "\n".join(lines[i % len(lines)] + str(i % 7) * (i % 3) for i in range(400))
+    whole_ids, whole_spans = encode_with_spans(tokenizer, text)
+    ids, spans = tokenize_with_spans(tokenizer, text, piece_chars=97)
+    assert len(_pieces(text, 97)) > 20  # it was really cut
+    assert np.array_equal(ids, whole_ids) and np.array_equal(spans, whole_spans)
+
+
+def test_distinct_chunks_and_streamed_latent_health_match_numpy_and_torch(small_codec):
+    """latent_health without latents (encoded block by block) equals the same health from the whole
+    encoding, and its numbers match references: np.unique(axis=0) for the distinct chunks, np.var
+    (population variance) for the mean's variance, torch.distributions' KL(N(m, s²) || N(0, 1))."""
+    import numpy as np
+    import torch
+
+    from core.engine.health import distinct_chunk_starts, latent_health
+    from core.engine.noise import ENCODE_BATCH, encode_chunks
+
+    text = "".join(f"Sleeper {i % 97} checked at km {i % 13}.{i % 7}; fishplate {i % 5} fine.\n" for i in range(2000))
+    chunks = chunk_text(text, small_codec)
+    assert chunks.num_chunks > ENCODE_BATCH  # more than one encoding block
+    _, first = np.unique(chunks.ids().numpy(), axis=0, return_index=True)
+    assert np.array_equal(distinct_chunk_starts(chunks), np.sort(first))
+    encoded = encode_chunks(small_codec, chunks)
+    sample = len(first) // 2  # the nearest-neighbour part samples distinct chunks
+    streamed = latent_health(small_codec, chunks, max_chunks=sample)
+    held = latent_health(small_codec, chunks, encoded=encoded, max_chunks=sample)
+    assert np.array_equal(streamed.nn_half_distance, held.nn_half_distance) and streamed.nn_sampled
+    mean, std = encoded.mean.double(), encoded.std.double()
+    assert streamed.mean_variance_per_dim == pytest.approx(np.var(mean.numpy(), axis=0), rel=1e-5, abs=1e-9)
+    normal = torch.distributions.Normal
+    kl = torch.distributions.kl_divergence(normal(mean, std), normal(torch.zeros_like(mean), torch.ones_like(std))).mean(0)
+    assert streamed.kl_per_dim == pytest.approx(kl.numpy(), rel=1e-5, abs=1e-7)
+    assert streamed.latent_rms == pytest.approx(float(mean.square().mean().sqrt()), rel=1e-6)
+    assert streamed.active_dims == held.active_dims

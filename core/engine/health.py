@@ -8,7 +8,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from core.deferred import torch
-from core.engine.noise import Encoded, encode_chunks, noise_scale
+from core.engine.noise import ENCODE_BATCH, Encoded, LatentScale, noise_scale
 from core.engine.text import Chunks
 
 ACTIVE_THRESHOLD = 0.01  # variance of the mean over chunks; common practice (importance-weighted AE literature)
@@ -50,11 +50,15 @@ def kl_to_standard_normal(mean: torch.Tensor, std: torch.Tensor) -> torch.Tensor
     return 0.5 * (mean.square() + std.square() - 1.0) - std.log()
 
 
-def nearest_distinct_half_distance(means: torch.Tensor, block: int = 2048) -> torch.Tensor:
+def nearest_distinct_half_distance(means: torch.Tensor, block: int = 2048, should_stop=None) -> torch.Tensor:
     """Half the distance from each row to its nearest other row (rows stand for distinct chunks)."""
+    from core.errors import SweepCancelled
+
     n = means.shape[0]
     out = torch.empty(n)
     for start in range(0, n, block):
+        if should_stop is not None and should_stop():
+            raise SweepCancelled()
         d = torch.cdist(means[start : start + block].double(), means.double())
         rows = torch.arange(d.shape[0])
         d[rows, rows + start] = float("inf")
@@ -62,35 +66,96 @@ def nearest_distinct_half_distance(means: torch.Tensor, block: int = 2048) -> to
     return out
 
 
+def distinct_chunk_starts(chunks: Chunks) -> np.ndarray:
+    """Sorted index of the first occurrence of every distinct chunk (padded ids included)."""
+    ids = chunks.ids().numpy()
+    n, k = ids.shape
+    bits = max(1, int(ids.max(initial=0)).bit_length())
+    if n and k * bits <= 63:  # each row packs into one int64 key: far less memory than unique rows
+        keys = np.zeros(n, dtype=np.int64)
+        for j in range(k):
+            keys |= ids[:, j] << (bits * j)
+        del ids
+        _, first = np.unique(keys, return_index=True)
+    else:
+        _, first = np.unique(ids, axis=0, return_index=True)
+    return np.sort(first)
+
+
+class _Moments:
+    """Per-dimension count, mean and sum of squared deviations, merged block by block (Chan et al. 1979)."""
+
+    def __init__(self, dim: int):
+        self.n, self.mean, self.m2 = 0, np.zeros(dim), np.zeros(dim)
+
+    def add(self, block: torch.Tensor) -> None:
+        x = block.double().numpy()
+        nb = x.shape[0]
+        if nb == 0:
+            return
+        mb = x.mean(0)
+        m2b = np.square(x - mb).sum(0)
+        total = self.n + nb
+        delta = mb - self.mean
+        self.mean = self.mean + delta * (nb / total)
+        self.m2 = self.m2 + m2b + np.square(delta) * (self.n * nb / total)
+        self.n = total
+
+    def variance(self) -> np.ndarray:
+        return self.m2 / self.n if self.n > 1 else np.zeros_like(self.m2)
+
+
 def latent_health(
     codec, chunks: Chunks, encoded: Encoded | None = None, max_chunks: int = 20_000, seed: int = 0, should_stop=None
 ) -> LatentHealth:
-    if encoded is None:
-        encoded = encode_chunks(codec, chunks, should_stop=should_stop)
-    mean = encoded.mean
-    variance = mean.var(0, unbiased=False) if mean.shape[0] > 1 else torch.zeros(mean.shape[1])
-    kl = std = None
-    if encoded.std is not None:
-        kl = kl_to_standard_normal(mean, encoded.std).mean(0).numpy()
-        std = encoded.std.mean(0).numpy()
+    """Latent health of a text. Without `encoded`, the text is encoded block by block and no latent is
+    kept but those of the (at most `max_chunks`) distinct chunks the nearest-neighbour distances need."""
+    from core.codecs.contract import opened
+    from core.errors import SweepCancelled
+
+    codec = opened(codec)
     # distinct chunks only: identical token chunks have identical means
-    ids = chunks.ids().numpy()
-    _, first = np.unique(ids, axis=0, return_index=True)
-    first = np.sort(first)
+    first = distinct_chunk_starts(chunks)
     sampled = len(first) > max_chunks
     if sampled:
         first = np.sort(np.random.default_rng(seed).choice(first, size=max_chunks, replace=False))
-    half = nearest_distinct_half_distance(mean[torch.from_numpy(first)]) if len(first) > 1 else torch.zeros(0)
+    n, dim = chunks.num_chunks, codec.latent_dim
+    moments, sumsq = _Moments(dim), np.zeros(dim)
+    kl_sum = std_sum = None
+    kept = []
+    for start in range(0, n, ENCODE_BATCH):
+        stop = min(start + ENCODE_BATCH, n)
+        if encoded is not None:
+            mean = encoded.mean[start:stop]
+            std = None if encoded.std is None else encoded.std[start:stop]
+        else:
+            if should_stop is not None and should_stop():
+                raise SweepCancelled()
+            mean, std = codec.encode(chunks.ids(start, stop))
+            mean, std = mean.float(), None if std is None else std.float()
+        moments.add(mean)
+        sumsq += mean.double().square().sum(0).numpy()
+        if std is not None:
+            kl = kl_to_standard_normal(mean, std).double().sum(0).numpy()
+            st = std.double().sum(0).numpy()
+            kl_sum, std_sum = (kl, st) if kl_sum is None else (kl_sum + kl, std_sum + st)
+        lo, hi = np.searchsorted(first, [start, stop])
+        if hi > lo:
+            kept.append(mean[torch.from_numpy(first[lo:hi] - start)])
+    scale = LatentScale(sumsq, n)
+    variance = moments.variance().astype(np.float32)
+    means = torch.cat(kept) if kept else torch.zeros(0, dim)
+    half = nearest_distinct_half_distance(means, block=1024, should_stop=should_stop) if len(means) > 1 else torch.zeros(0)
     half = half[torch.isfinite(half)]
     return LatentHealth(
         latent_dim=codec.latent_dim,
-        num_chunks=encoded.num_chunks,
-        latent_rms=encoded.latent_rms,
-        rms_per_dim=encoded.rms_per_dim.numpy(),
-        mean_variance_per_dim=variance.numpy(),
+        num_chunks=n,
+        latent_rms=scale.latent_rms,
+        rms_per_dim=(encoded.rms_per_dim if encoded is not None else scale.rms_per_dim).numpy(),
+        mean_variance_per_dim=variance,
         active_dims=int((variance > ACTIVE_THRESHOLD).sum()),
-        kl_per_dim=kl,
-        std_per_dim=std,
+        kl_per_dim=None if kl_sum is None else (kl_sum / n).astype(np.float32),
+        std_per_dim=None if std_sum is None else (std_sum / n).astype(np.float32),
         nn_half_distance=half.numpy(),
         nn_sampled=sampled,
     )

@@ -129,10 +129,15 @@ class SweepSettings:
 
 def critical_sigmas(sigmas: Sequence[float], wrong_counts: np.ndarray, repeats: int) -> np.ndarray:
     """Per token: the smallest grid sigma at which it is wrong in at least half the repeats (NaN: never)."""
-    broken = wrong_counts.astype(np.int64) * 2 >= repeats
-    first = np.argmax(broken, axis=1)
-    out = np.asarray(sigmas, dtype=np.float64)[first]
-    out[~broken.any(axis=1)] = np.nan
+    grid = np.asarray(sigmas, dtype=np.float64)
+    out = np.empty(len(wrong_counts), dtype=np.float64)
+    threshold = (int(repeats) + 1) // 2  # 2·w >= repeats  <=>  w >= ceil(repeats / 2)
+    for a in range(0, len(wrong_counts), 1 << 20):  # in row blocks: no [T, S] temporary of int64
+        broken = wrong_counts[a : a + (1 << 20)] >= threshold
+        first = np.argmax(broken, axis=1)
+        block = grid[first]
+        block[~broken.any(axis=1)] = np.nan
+        out[a : a + len(block)] = block
     return out
 
 
@@ -210,14 +215,21 @@ class SweepResult:
 
     def tokens_csv(self) -> str:
         out = io.StringIO()
-        writer = csv.writer(out, lineterminator="\n")
-        writer.writerow(["index", "token_id", "text", "char_start", "char_end", "chunk", "position", "critical_sigma"])
-        text, spans, k = self.chunks.text, self.chunks.spans, self.chunks.chunk_size
-        for t in range(self.chunks.num_tokens):
-            a, b = int(spans[t, 0]), int(spans[t, 1])
-            crit = self.critical_sigma[t]
-            writer.writerow([t, int(self.chunks.token_ids[t]), text[a:b], a, b, t // k, t % k, "" if np.isnan(crit) else f"{crit:.6g}"])
+        self.write_tokens_csv(out)
         return out.getvalue()
+
+    def write_tokens_csv(self, stream) -> None:
+        """tokens.csv into an open text stream, block by block (a long text never becomes one string)."""
+        writer = csv.writer(stream, lineterminator="\n")
+        writer.writerow(["index", "token_id", "text", "char_start", "char_end", "chunk", "position", "critical_sigma"])
+        text, k = self.chunks.text, self.chunks.chunk_size
+        for a0 in range(0, self.chunks.num_tokens, 65536):
+            b0 = min(a0 + 65536, self.chunks.num_tokens)
+            spans = self.chunks.spans[a0:b0].tolist()
+            ids = self.chunks.token_ids[a0:b0].tolist()
+            crit = [("" if c != c else f"{c:.6g}") for c in self.critical_sigma[a0:b0].tolist()]
+            writer.writerows([t, i, text[a:b], a, b, t // k, t % k, c]
+                             for t, i, (a, b), c in zip(range(a0, b0), ids, spans, crit))
 
     def write(self, directory: str | os.PathLike, force: bool = False) -> Path:
         """Write sweep.json, curves.csv, tokens.csv and arrays.npz into a fresh directory, atomically."""
@@ -231,7 +243,8 @@ class SweepResult:
         folder.mkdir(parents=True, exist_ok=True)
         (folder / "sweep.json").write_text(json.dumps(self.to_json_dict(), indent=1, allow_nan=True), encoding="utf-8")
         (folder / "curves.csv").write_text(self.curves_csv(), encoding="utf-8")
-        (folder / "tokens.csv").write_text(self.tokens_csv(), encoding="utf-8")
+        with open(folder / "tokens.csv", "w", encoding="utf-8", newline="") as stream:
+            self.write_tokens_csv(stream)
         (folder / "text.txt").write_text(self.chunks.text, encoding="utf-8")
         (folder / "vocab.json").write_text(json.dumps({str(k): v for k, v in self.token_text.items()}), encoding="utf-8")
         np.savez_compressed(
@@ -405,7 +418,9 @@ def _sweep_from_files(label: str, raw: dict[str, Any]) -> SweepResult:
 def token_texts(tokenizer, *id_arrays: np.ndarray, vocab_size: int) -> dict[int, str]:
     present = np.zeros(vocab_size, dtype=bool)
     for ids in id_arrays:
-        present |= np.bincount(ids.ravel().astype(np.int64), minlength=vocab_size)[:vocab_size] > 0
+        columns = ids.reshape(len(ids), -1) if ids.ndim else ids.reshape(1, 1)
+        for j in range(columns.shape[1]):  # column by column: no int64 copy of a [T, S] array
+            present |= np.bincount(columns[:, j].astype(np.int64), minlength=vocab_size)[:vocab_size] > 0
     return {int(i): token_display(tokenizer, int(i)) for i in np.flatnonzero(present)}
 
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -93,12 +94,58 @@ class Chunks:
         return torch.from_numpy(real.reshape(stop - start, k))
 
 
+PIECE_CHARS = 32_000  # a long text is tokenized about this many characters at a time: faster than whole,
+# and the tokenizer holds the GIL per call, so a worker thread tokenizing never stalls the GUI for long (~50 ms)
+_SAFE_CUT = re.compile(r"(?<=\S)\n(?=\S)")
+
+
+def _splits_at_lone_newlines(tokenizer) -> bool:
+    """Whether the tokenizer's pieces never cross a newline between two non-space characters.
+
+    True for a byte-level BPE with the GPT-2 split pattern and no normalizer (this project's
+    tokenizers): there a lone "\n" is its own pre-token whether or not the text ends after it,
+    so the text tokenizes piece by piece exactly as it does whole."""
+    try:
+        from tokenizers import Tokenizer, pre_tokenizers
+
+        return (isinstance(tokenizer, Tokenizer) and tokenizer.normalizer is None
+                and isinstance(tokenizer.pre_tokenizer, pre_tokenizers.ByteLevel) and bool(tokenizer.pre_tokenizer.use_regex))
+    except Exception:  # an unusual tokenizer: tokenize it whole
+        return False
+
+
+def _pieces(text: str, size: int) -> list[int]:
+    """Character offsets where a long text is cut for tokenizing: just after a lone newline near every `size` characters."""
+    cuts, at = [0], size
+    while at < len(text):
+        found = _SAFE_CUT.search(text, at)
+        if found is None:
+            break
+        cuts.append(found.end())
+        at = found.end() + size
+    return cuts + [len(text)]
+
+
+def tokenize_with_spans(tokenizer, text: str, byte_lengths=None, piece_chars: int = PIECE_CHARS) -> tuple[np.ndarray, np.ndarray]:
+    """Token ids and character spans of a text; a long text goes through the tokenizer piece by piece
+    (when that gives exactly the whole text's tokens), which bounds the tokenizer's own memory."""
+    if len(text) <= piece_chars or not _splits_at_lone_newlines(tokenizer):
+        return encode_with_spans(tokenizer, text, byte_lengths)
+    cuts = _pieces(text, piece_chars)
+    ids, spans = [], []
+    for a, b in zip(cuts, cuts[1:]):
+        piece_ids, piece_spans = encode_with_spans(tokenizer, text[a:b], byte_lengths)
+        ids.append(piece_ids)
+        spans.append(piece_spans + a)
+    return np.concatenate(ids), np.concatenate(spans)
+
+
 def chunk_text(text: str, codec, source: str = "the text") -> Chunks:
     """Tokenize a text with the codec's tokenizer and cut it into chunks of K tokens."""
     from core.codecs.contract import byte_lengths_of
 
     check_text(text, source)
-    ids, spans = encode_with_spans(codec.tokenizer, text, byte_lengths_of(codec.tokenizer))
+    ids, spans = tokenize_with_spans(codec.tokenizer, text, byte_lengths_of(codec.tokenizer))
     if len(ids) == 0:
         raise TextError(f"{source} gives no tokens.")
     return Chunks(
