@@ -16,6 +16,8 @@ from core.analyses.views import token_at
 
 def _utf16_offsets(text: str) -> np.ndarray | None:
     """Python index -> Qt (UTF-16) position, or None when the two agree (no astral characters)."""
+    if text.isascii() or max(text, default="\0") <= "\uffff":  # both in C, no copy of the text
+        return None
     astral = np.frombuffer(text.encode("utf-32-le", "surrogatepass"), dtype="<u4") > 0xFFFF
     if not astral.any():
         return None
@@ -99,21 +101,25 @@ class TokenText(QPlainTextEdit):
         self.marked_count = int(len(tokens))
 
     def paint_levels(self, levels: np.ndarray, formats: dict[int, QTextCharFormat]) -> None:
-        """Format every token by its level, in runs of equal level (one pass over the document)."""
+        """Format every token by its level, in runs of equal level (one pass over the document;
+        the runs are found with numpy, so only the formatting itself loops)."""
+        levels = np.asarray(levels)
+        n = len(levels)
+        if n == 0:
+            return
+        firsts = np.concatenate([[0], np.flatnonzero(levels[1:] != levels[:-1]) + 1])
+        lasts = np.concatenate([firsts[1:], [n]]) - 1
+        starts, ends = self.spans[firsts, 0], self.spans[lasts, 1]
+        if self._map is not None:
+            starts, ends = self._map[starts], self._map[ends]
         cursor = QTextCursor(self.document())
         cursor.beginEditBlock()
-        n = len(levels)
-        i = 0
-        while i < n:
-            j = i + 1
-            while j < n and levels[j] == levels[i]:
-                j += 1
-            fmt = formats.get(int(levels[i]))
+        for level, a, b in zip(levels[firsts].tolist(), starts.tolist(), ends.tolist()):
+            fmt = formats.get(int(level))
             if fmt is not None:
-                cursor.setPosition(self.doc_pos(int(self.spans[i, 0])))
-                cursor.setPosition(self.doc_pos(int(self.spans[j - 1, 1])), QTextCursor.MoveMode.KeepAnchor)
+                cursor.setPosition(a)
+                cursor.setPosition(b, QTextCursor.MoveMode.KeepAnchor)
                 cursor.setCharFormat(fmt)
-            i = j
         cursor.endEditBlock()
 
     # ---- geometry ------------------------------------------------------------------------

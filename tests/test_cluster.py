@@ -127,10 +127,11 @@ def slow_checkpoint(folder: Path, name: str, target: Path, delay: float) -> Path
     return path
 
 
-def test_sharded_sweep_from_the_command_line_equals_one_process(where, text_file, one_process, tmp_path, capsys):
+def test_sharded_sweep_from_the_command_line_equals_one_process(cluster, where, text_file, one_process, tmp_path, capsys):
     out = tmp_path / "out"
     code = main(["sweep", str(PLAIN), str(TOLERANT), "--text", str(text_file), "--cluster", where.address, "--out", str(out)] + ARGS)
     assert code == 0, capsys.readouterr().err
+    assert len(cluster[1].scheduler_info()["workers"]) == 2  # the scheduler and its workers are left as they were
     for name, reference in one_process.items():
         sharded = read_sweep(out / name)
         assert_same_sweep(reference, sharded)
@@ -205,6 +206,15 @@ def test_without_distributed_workers_says_what_to_install(monkeypatch, text_file
     err = capsys.readouterr().err.strip()
     assert err == "chunkscope: running on a cluster needs Dask's distributed package: pip install chunkscope[cluster]."
     assert not out.exists()
+
+
+def test_a_local_cluster_has_one_thread_per_process_and_is_shut_down_afterwards():
+    from core.engine.cluster import cluster_client
+
+    with cluster_client(Where(workers=1)) as client:
+        assert list(client.nthreads().values()) == [1]
+        local = client.cluster
+    assert local.status.name == "closed" and client.status == "closed"
 
 
 def test_cancel_stops_the_shards_on_the_cluster(cluster, where, tmp_path):

@@ -107,7 +107,7 @@ def cluster_client(where: Where) -> Iterator[Any]:
     previous = signal.signal(signal.SIGINT, signal.SIG_IGN) if main else None
     try:
         cluster = distributed.LocalCluster(
-            n_workers=where.workers, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=logging.ERROR,
+            n_workers=where.workers, threads_per_worker=1, processes=True, dashboard_address=":0", silence_logs=logging.ERROR,
         )
     finally:
         if main:
