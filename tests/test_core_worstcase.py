@@ -327,8 +327,9 @@ def test_report_gets_a_worst_case_section(tmp_path, capsys):
     text.write_text(demo_text()[2000:2500], encoding="utf-8")
     out = tmp_path / "r.html"
     assert main(["report", str(checkpoint), "--text", str(text), "--out", str(out), "--worst-case", "--quiet",
-                 "--sigmas", "0,0.5,1,2", "--repeats", "1", "--figures", str(tmp_path / "figs")]) == 0
+                 "--sigmas", "0,0.5,1,2", "--repeats", "1", "--seed", "5", "--figures", str(tmp_path / "figs")]) == 0
     html = out.read_text(encoding="utf-8")
+    assert "data-scale noise, seed 5, 1 repeats" in html  # the random radius uses the report's own --seed and --repeats
     order = [html.index(k) for k in ('id="worst-case-tolerant"', 'data-name="worst-case-tolerant-radii"',
                                      'data-name="worst-case-tolerant-scatter"', "Most fragile chunks", 'id="provenance"')]
     assert order == sorted(order)
