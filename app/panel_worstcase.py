@@ -252,7 +252,7 @@ class WorstCasePanel(QWidget):
         self.summary.setText(
             f"{result.provenance['codec']['name']} · {s['verified']:,} of {s['chunks']:,} chunks verified"
             + (f" ({s['failed']:,} failed)" if s["failed"] else "")
-            + f" · median worst case {median:.3g} · below random for {rate}"
+            + f" · median worst case {'—' if median is None else format(median, '.3g')} · below random for {rate}"
         )
         edges, worst, random = radius_histogram(result, self.relative, bins=40)
         hist = self.hist.getPlotItem()

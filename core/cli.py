@@ -422,14 +422,16 @@ def cmd_report(args: argparse.Namespace) -> int:
     if files:
         codecs = open_checkpoints(files, args.adapter)
         if getattr(args, "worst_case", False):
-            from core.analyses.worstcase import refuse_without_gradients, report_section, worst_case
+            from core.analyses.worstcase import WorstCaseSettings, refuse_without_gradients, report_section, worst_case
+
+            worst_settings = WorstCaseSettings(seed=settings.seed, repeats=settings.repeats).validated()  # the report's own
 
             for codec in codecs:  # before any work: a codec without gradients is refused at once
                 refuse_without_gradients(codec)
             for codec in codecs:
                 chunks = chunk_text(text, codec, source)
                 progress = None if args.quiet else TerminalProgress(f"worst {codec.name[:10]:<10}")
-                extra.append(report_section(worst_case(codec, chunks, progress=progress, text_source=source)))
+                extra.append(report_section(worst_case(codec, chunks, worst_settings, progress=progress, text_source=source)))
         if len(codecs) >= 2:
             comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"))
         else:

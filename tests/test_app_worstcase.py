@@ -35,3 +35,24 @@ def test_the_worst_case_view_shows_cores_numbers_and_drops_stale_ones(window, qt
     assert wb.set_text(demo_text()[4000:4400], "another slice")
     qtbot.waitUntil(lambda: all(e.ready for e in wb.entries.values()), timeout=WAIT)
     assert panel.result is None and panel.table.rowCount() == 0  # nothing computed on the old text is shown
+
+
+def test_a_result_where_every_search_failed_is_drawn_not_raised(window, qtbot, tokenizer):
+    """Every chunk failed (a decoder that ignores z: no gradient, so no boundary): core's summary has no
+    median (None), and the view says so instead of raising inside its slot (common practice: '—' for none)."""
+    import torch
+
+    from core.analyses.worstcase import worst_case
+    from tests.test_core_worstcase import linear_setup
+
+    codec, chunks, encoded = linear_setup(tokenizer, n=40)
+    codec.W = torch.zeros_like(codec.W)  # logits = b whatever z is: nothing ever flips
+    result = worst_case(codec, chunks, encoded=encoded)
+    assert result.failed == result.num_chunks and result.summary()["relative_radius_median"] is None
+    panel = window.panels["worstcase"]
+    qtbot.waitUntil(lambda: panel._key() is not None, timeout=WAIT)
+    panel.results[panel._key()] = result
+    panel.refresh()
+    assert panel.result is result
+    assert f"0 of {result.num_chunks:,} chunks verified" in panel.summary.text() and "median worst case —" in panel.summary.text()
+    assert panel.table.rowCount() == 0

@@ -294,3 +294,19 @@ def test_adapter_line_is_printed_before_its_code_runs(user_model, tmp_path, caps
     lines = capsys.readouterr().err.strip().splitlines()
     assert lines[0] == f"chunkscope: running the adapter code in {bad.absolute()} (sha256 {file_sha256(bad)})"
     assert lines[1].startswith("chunkscope: The adapter") and "RuntimeError: boom" in lines[1] and len(lines) == 2
+
+
+def test_an_adapter_changed_after_opening_is_not_shipped_to_workers(user_model):
+    """The workers must run the code that opened the checkpoint here (its sha256 is in the provenance),
+    never a file edited since (common practice: pin code by content hash)."""
+    from core.engine.cluster import ClusterError, codec_ticket
+
+    adapter, checkpoint = user_model
+    codec = load_with_adapter(checkpoint, str(adapter))
+    ticket = codec_ticket(codec, str(adapter))
+    assert ticket.adapter.sha256 == codec.source.adapter_sha256 == file_sha256(adapter)
+    adapter.write_text(adapter.read_text(encoding="utf-8") + "\nprint('new code')\n", encoding="utf-8")
+    for spec in (str(adapter), None):  # named again (the command line) or as recorded (the workbench)
+        with pytest.raises(ClusterError) as info:
+            codec_ticket(codec, spec)
+        one_sentence(str(info.value), str(adapter), "changed")

@@ -327,8 +327,9 @@ def test_report_gets_a_worst_case_section(tmp_path, capsys):
     text.write_text(demo_text()[2000:2500], encoding="utf-8")
     out = tmp_path / "r.html"
     assert main(["report", str(checkpoint), "--text", str(text), "--out", str(out), "--worst-case", "--quiet",
-                 "--sigmas", "0,0.5,1,2", "--repeats", "1", "--figures", str(tmp_path / "figs")]) == 0
+                 "--sigmas", "0,0.5,1,2", "--repeats", "1", "--seed", "5", "--figures", str(tmp_path / "figs")]) == 0
     html = out.read_text(encoding="utf-8")
+    assert "data-scale noise, seed 5, 1 repeats" in html  # the random radius uses the report's own --seed and --repeats
     order = [html.index(k) for k in ('id="worst-case-tolerant"', 'data-name="worst-case-tolerant-radii"',
                                      'data-name="worst-case-tolerant-scatter"', "Most fragile chunks", 'id="provenance"')]
     assert order == sorted(order)
@@ -336,3 +337,16 @@ def test_report_gets_a_worst_case_section(tmp_path, capsys):
     capsys.readouterr()
     assert main(["report", str(tmp_path / "figs"), "--out", str(tmp_path / "x.html"), "--worst-case"]) == 2
     one_sentence(capsys.readouterr().err.strip().removeprefix("chunkscope: "), "--worst-case", "checkpoint")
+
+
+def test_a_decoder_that_ignores_z_fails_every_chunk_without_raising(tokenizer):
+    """Fact of the trade (from memory): logits constant in z have zero gradient and no decision boundary, so
+    no perturbation changes the decode; every chunk is reported failed (NaN radius), and the summary says so."""
+    codec, chunks, encoded = linear_setup(tokenizer, n=40)
+    codec.W = torch.zeros_like(codec.W)
+    result = worst_case(codec, chunks, encoded=encoded)
+    assert result.failed == result.num_chunks == 40 and np.isnan(result.radius).all()
+    s = result.summary()
+    assert s["verified"] == 0 and s["radius_median"] is None and s["radius_min"] is None
+    rows = list(csv.DictReader(io.StringIO(result.csv_text())))
+    assert len(rows) == 40 and all(r["verified"] == "0" and r["from_token"] == "" for r in rows)

@@ -169,6 +169,10 @@ def codec_ticket(codec, adapter: str | None = None) -> CodecTicket:
                 source = spec.file.read_bytes()
             except OSError as exc:
                 raise ClusterError(f"the adapter {spec.text} cannot be read: {exc.strerror or exc}.") from None
+            allowed = codec.source.adapter_sha256  # the code that opened it here; workers run only that code
+            if allowed and Path(codec.source.adapter) == spec.file.absolute() and hashlib.sha256(source).hexdigest() != allowed:
+                raise ClusterError(f"the adapter {spec.text} changed after it opened {codec.path}; open the checkpoint "
+                                   "again so the new code is the one that runs.")
             ticket_adapter = AdapterTicket(label=spec.text, function=spec.function, file_name=spec.file.name, source=source,
                                            sha256=hashlib.sha256(source).hexdigest())
     return CodecTicket(os.path.abspath(codec.path), codec.sha256, ticket_adapter)

@@ -418,6 +418,8 @@ def _sweep_from_files(label: str, raw: dict[str, Any]) -> SweepResult:
 def token_texts(tokenizer, *id_arrays: np.ndarray, vocab_size: int) -> dict[int, str]:
     present = np.zeros(vocab_size, dtype=bool)
     for ids in id_arrays:
+        if ids.size == 0:  # e.g. no flipped token at all: nothing to name (and no shape to reshape)
+            continue
         columns = ids.reshape(len(ids), -1) if ids.ndim else ids.reshape(1, 1)
         for j in range(columns.shape[1]):  # column by column: no int64 copy of a [T, S] array
             present |= np.bincount(columns[:, j].astype(np.int64), minlength=vocab_size)[:vocab_size] > 0
