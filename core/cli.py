@@ -387,6 +387,45 @@ def cmd_report(args: argparse.Namespace) -> int:
     return 0
 
 
+def print_predictions(result, stream=None) -> None:
+    """The short verdict of `predictions`: the key numbers, then the verdict in words."""
+    stream = stream or sys.stdout
+    s = result.summary
+
+    def iv(key: str, scale: float = 1.0, digits: str = ".3g") -> str:
+        low, high = s.get(f"{key}_low"), s.get(f"{key}_high")
+        if s.get(key) is None:
+            return "—"
+        text = f"{s[key] * scale:{digits}}"
+        return text + (f" ({low * scale:{digits}}–{high * scale:{digits}})" if low is not None and high is not None else "")
+
+    print(f"{s['chunks']:,} chunks × {s['samples']} samples, {s['tokens']:,} tokens", file=stream)
+    print(f"  effective sigma (data-scale)      {iv('effective_sigma')}", file=stream)
+    print(f"  decoded accuracy                  {iv('decoded_accuracy', 100, '.2f')} %", file=stream)
+    noise = s["noise_accuracy_at_effective_sigma"]
+    print(f"  random noise of that size         {'—' if noise is None else f'{100 * noise:.2f}'} %", file=stream)
+    print(f"  structured-error factor           {iv('structured_error_factor')}", file=stream)
+    if s["energy_score"] is not None:
+        print(f"  energy score (latent units)       {iv('energy_score', 1, '.4g')}", file=stream)
+        print(f"  Brier estimate (tokens)           {iv('brier_estimate', 1, '.4g')}", file=stream)
+    print(result.verdict, file=stream)
+
+
+def cmd_predictions(args: argparse.Namespace) -> int:
+    from core.analyses.predictions import PREDICTIONS_FOLDER, analyse_predictions, read_predictions
+
+    out = Path(args.out)
+    _check_outputs([out], args.force, PREDICTIONS_FOLDER, folder=True)
+    predictions = read_predictions(args.predictions)
+    (codec,) = open_checkpoints([args.checkpoint], args.adapter)
+    progress = None if args.quiet else TerminalProgress("sweep")
+    result = analyse_predictions(codec, predictions, repeats=args.repeats, seed=args.seed, sweep_progress=progress)
+    result.write(out, force=args.force)
+    print(f"wrote {out}/ (predictions.json, " + ", ".join(result.csv_files()) + ")", file=sys.stderr)
+    print_predictions(result)
+    return 0
+
+
 def cmd_train(args: argparse.Namespace) -> int:
     from core.training import train
 
@@ -465,6 +504,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default="report.html", help="the HTML file to write (default: report.html)")
     p.add_argument("--force", action="store_true", help="replace an existing file")
     p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("predictions", help="hold a generator's predicted latents against the decoder's tolerance",
+                       description="Decode a generator's predictions (a predictions file, see DESIGN.md) with the codec they "
+                       "were made for, sweep the same chunks under data-scale noise, and write DIR/predictions.json and CSVs: "
+                       "effective sigma, decoded accuracy, the accuracy random noise of that size gives, the structured-error "
+                       "factor, error geometry and, with several samples per chunk, the energy score and Brier estimates.")
+    p.add_argument("checkpoint")
+    p.add_argument("predictions", metavar="PREDICTIONS", help="a predictions .safetensors file")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
+    p.add_argument("--repeats", type=int, default=4, help="noise draws per chunk and sigma in the sweep (default 4)")
+    p.add_argument("--seed", type=int, default=0, help="noise seed of the sweep (default 0)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--out", default="predictions", help="output folder (default: predictions)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    p.set_defaults(func=cmd_predictions)
     return parser
 
 

@@ -157,3 +157,40 @@ def test_each_bad_predictions_file_is_one_sentence_naming_it(tolerant, short, tm
     write_predictions(path, good[:-1], ids[:-1], sha, "", text=text)
     with pytest.raises(PredictionsError, match="N = "):
         analyse_predictions(tolerant, read_predictions(path))
+
+
+REQUIRED_KEYS = ("effective_sigma", "decoded_accuracy", "decoded_accuracy_low", "decoded_accuracy_high",
+                 "noise_accuracy_at_effective_sigma", "structured_error_factor", "structured_error_factor_low",
+                 "structured_error_factor_high", "energy_score", "brier_estimate", "samples", "chunks", "provenance")
+
+
+def test_command_writes_the_documented_keys_and_csvs_and_refuses_to_overwrite(tolerant, short, tmp_path, capsys):
+    import csv
+
+    from core.cli import main
+
+    text, chunks, mean = short
+    eps = torch.randn(len(mean), 3, mean.shape[1], generator=torch.Generator().manual_seed(7))
+    latents = (mean.unsqueeze(1) + 0.6 * mean.square().mean(0).sqrt() * eps).numpy()
+    preds = tmp_path / "preds.safetensors"
+    write_predictions(preds, latents, chunks.ids().numpy(), tolerant.sha256, "cli test", text=text)
+    out = tmp_path / "gen"
+    args = ["predictions", str(SAMPLES / "tolerant.safetensors"), str(preds), "--out", str(out), "--quiet", "--repeats", "2"]
+    assert main(args) == 0
+    printed = capsys.readouterr().out
+    assert "the generator's errors are the size of data-scale σ" in printed
+    data = json.loads((out / "predictions.json").read_text(encoding="utf-8"))
+    for key in REQUIRED_KEYS:
+        assert key in data, key
+    assert data["samples"] == 3 and data["chunks"] == chunks.num_chunks
+    assert data["provenance"]["predictions"]["codec_sha256"] == tolerant.sha256 == data["provenance"]["codec"]["sha256"]
+    # by hand from the file: sqrt of the mean of ((predicted − mean) / r)² over chunks, samples and dimensions
+    r = mean.square().mean(0).sqrt().double().numpy()
+    by_hand = np.sqrt((((latents - mean.numpy()[:, None]) / r) ** 2).mean())
+    assert data["effective_sigma"] == pytest.approx(by_hand, rel=1e-6)
+    with open(out / "positions.csv", newline="", encoding="utf-8") as handle:
+        rows = list(csv.DictReader(handle))
+    assert [int(r["position"]) for r in rows] == list(range(tolerant.chunk_size))
+    assert main(args) == 2
+    assert "already exists" in capsys.readouterr().err
+    assert main(args + ["--force"]) == 0
