@@ -89,6 +89,7 @@ class Screenshot:
         self.window.workbench.error.connect(self._fail)
         self.window.compare.error.connect(self._fail)
         self.window.trend.error.connect(self._fail)
+        self.window.predictions.error.connect(self._fail)
         self.timer = QTimer()
         self.timer.setInterval(100)
         self.timer.timeout.connect(self._tick)
@@ -133,6 +134,10 @@ class Screenshot:
                 w.compare.restore({"start": 0.02, "stop": 2.0, "points": 8, "spacing": "log", "zero": True, "repeats": 1})
                 if not w.compare.run():
                     return self._fail(w.message.text() or "the comparison did not start")
+            elif self.view == "predictions":  # the shipped demo generator's predictions for the demo text
+                from app.state import samples_folder
+
+                w.open_predictions(str(samples_folder() / "generator" / "demo_predictions.safetensors"))
             elif self.view == "trend":  # the sample models' folder stands in for a training run
                 from app.state import samples_folder
 
@@ -151,6 +156,9 @@ class Screenshot:
                     return
             elif self.view == "trend":
                 if w.trend.is_running() or not w.trend.points:
+                    return
+            elif self.view == "predictions":
+                if w.predictions.is_running() or w.predictions.result is None:
                     return
             elif entry.sweep is None:
                 return

@@ -532,3 +532,19 @@ def analyse_predictions(codec, predictions: Predictions, repeats: int = 4, seed:
                                token_text=token_text | sweep.token_text)
     result.verdict = verdict_text(_plain(summary))
     return result
+
+
+def norm_histograms(result: PredictionsResult, bins: int = 40) -> dict[str, np.ndarray]:
+    """For the view: counts of ‖e‖ (all samples) and of the half-distances on one shared set of bin edges."""
+    norms = result.error_norm.reshape(-1)
+    half = result.half_distance[np.isfinite(result.half_distance)]
+    hi = float(max(norms.max(initial=0), half.max(initial=0), result.summary.get("noise_norm_at_tolerance_99") or 0)) * 1.05
+    edges = np.linspace(0, hi if hi > 0 else 1, bins + 1)
+    return {"edges": edges, "errors": np.histogram(norms, edges)[0] / max(1, len(norms)),
+            "half_distances": np.histogram(half, edges)[0] / max(1, len(half))}
+
+
+def wrong_levels(result: PredictionsResult) -> np.ndarray:
+    """Per token, for colouring the text: 0 right in every sample, 1 wrong in some, 2 wrong in at least half."""
+    rate = result.token_wrong_rate
+    return np.where(rate >= 0.5, 2, np.where(rate > 0, 1, 0)).astype(np.int8)

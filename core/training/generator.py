@@ -36,8 +36,8 @@ from core.analyses.prediction_file import write_predictions
 
 SAMPLES = Path(__file__).resolve().parents[2] / "sample_models"
 DEFAULT_CODEC = SAMPLES / "tolerant.safetensors"
-DEFAULT_OUT = SAMPLES / "generator.safetensors"
-DEFAULT_PREDICTIONS = SAMPLES / "demo_predictions.safetensors"
+DEFAULT_OUT = SAMPLES / "generator" / "generator.safetensors"
+DEFAULT_PREDICTIONS = SAMPLES / "generator" / "demo_predictions.safetensors"
 GENERATOR_FORMAT = "chunkscope.generator"
 DEMO_SAMPLES = 8
 HELD_OUT_CHUNKS = 20_000
@@ -284,6 +284,7 @@ def train_generator(codec_path=DEFAULT_CODEC, out=DEFAULT_OUT, predictions=DEFAU
         "versions": library_versions(),
         "measured": {"held_out": measured},
     }
+    Path(out).parent.mkdir(parents=True, exist_ok=True)
     save_generator(model, recipe, card, Path(out))
     log(f"[generator] saved {out} ({Path(out).stat().st_size / 1e6:.2f} MB) after {step} steps, {wall:.0f} s")
     if predictions:
