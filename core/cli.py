@@ -183,26 +183,32 @@ def print_tolerance_table(results, stream=None) -> None:
         print("absolute σ depends on each codec's latent scale: compare with the latent RMS, or sweep with --noise data-scale.", file=stream)
 
 
-def _already_exist(paths: list[Path]) -> ChunkscopeError:
+def _already_exist(paths: list[Path], options: str = "--out") -> ChunkscopeError:
     if len(paths) == 1:
-        return ChunkscopeError(f"{paths[0]} already exists; pass --force to replace it, or choose another --out.")
+        return ChunkscopeError(f"{paths[0]} already exists; pass --force to replace it, or choose another {options}.")
     listed = ", ".join(str(p) for p in paths[:-1]) + f" and {paths[-1]}"
-    return ChunkscopeError(f"{listed} already exist; pass --force to replace them, or choose another --out.")
+    return ChunkscopeError(f"{listed} already exist; pass --force to replace them, or choose another {options}.")
 
 
 def _check_outputs(targets: list[Path], force: bool, recognise, folder: bool) -> None:
     """Before any work: each target is free or replaceable, and its folder can be written."""
+    _check_targets([(target, recognise, folder, "--out") for target in targets], force)
+
+
+def _check_targets(items: list[tuple[Path, object, bool, str]], force: bool) -> None:
+    """`_check_outputs` for outputs of several kinds: (target, recognise, folder, option naming it) each."""
     from core.outputs.files import OutputExistsError, check_target, check_writable
 
-    existing = []
-    for target in targets:
+    existing, options = [], []
+    for target, recognise, folder, option in items:
         try:
             check_target(target, force, recognise, folder=folder)
         except OutputExistsError:
             existing.append(target)
+            options += [option] if option not in options else []
     if existing:
-        raise _already_exist(existing)
-    for target in targets:
+        raise _already_exist(existing, " or ".join(options))
+    for target, _, _, _ in items:
         check_writable(target)
 
 
@@ -343,17 +349,18 @@ def is_report_file(path: Path) -> bool:
 
 def cmd_report(args: argparse.Namespace) -> int:
     from core.analyses.compare import read_comparison
-    from core.outputs.files import write_text_atomic
-    from core.outputs.report import build_report
+    from core.outputs.files import Outputs
+    from core.outputs.report import FIGURES_FOLDER, render_report, report_sections, save_report_figures
     from core.engine.sweep import read_sweep, run_sweep
     from core.engine.text import chunk_text
     from core.analyses.trend import checkpoints_in, trend
 
     out = Path(args.out)
+    figures = Path(args.figures) if args.figures else None
     if not args.inputs and not args.trend:
         raise ChunkscopeError("give checkpoints or result folders to report on, or --trend FOLDER.")
     settings = _settings_from_args(args)
-    _check_outputs([out], args.force, is_report_file, folder=False)
+    _check_report_outputs(out, figures, args.force)
     sweeps, comparison, points = [], None, []
     paths = [Path(p) for p in args.inputs]
     from core.codecs.onnx import is_onnx_codec
@@ -381,9 +388,15 @@ def cmd_report(args: argparse.Namespace) -> int:
         if not files:
             announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter))
         points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter))
-    html = build_report(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise, title=args.title)
-    write_text_atomic(out, html, force=args.force, recognise=is_report_file)
+    sections = report_sections(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise)
+    html = render_report(sections, title=args.title)
+    with Outputs(args.force) as outputs:  # the page and its figure folder appear together, or neither
+        outputs.file(out, is_report_file).write_text(html, encoding="utf-8")
+        if figures is not None:
+            written = save_report_figures(sections, outputs.folder(figures, FIGURES_FOLDER), title=args.title)
     print(f"wrote {out} ({len(html) / 1024:.0f} KiB, self-contained)", file=sys.stderr)
+    if figures is not None:
+        print(f"wrote {len(written)} figure{'s' if len(written) != 1 else ''} as PDF into {figures}", file=sys.stderr)
     return 0
 
 
@@ -424,6 +437,14 @@ def cmd_predictions(args: argparse.Namespace) -> int:
     print(f"wrote {out}/ (predictions.json, " + ", ".join(result.csv_files()) + ")", file=sys.stderr)
     print_predictions(result)
     return 0
+
+
+def _check_report_outputs(out: Path, figures: Path | None, force: bool) -> None:
+    """Before any work: the HTML file and the figure folder are free or ours to replace with --force."""
+    from core.outputs.report import FIGURES_FOLDER
+
+    _check_targets([(out, is_report_file, False, "--out")]
+                   + ([(figures, FIGURES_FOLDER, True, "--figures")] if figures is not None else []), force)
 
 
 def cmd_train(args: argparse.Namespace) -> int:
@@ -502,7 +523,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--trend", metavar="FOLDER", help="also sweep a folder of training checkpoints")
     p.add_argument("--title", default="chunkscope report")
     p.add_argument("--out", default="report.html", help="the HTML file to write (default: report.html)")
-    p.add_argument("--force", action="store_true", help="replace an existing file")
+    p.add_argument("--figures", metavar="DIR", help="also write every figure of the report as DIR/<name>.pdf (with DIR/figures.json naming each)")
+    p.add_argument("--force", action="store_true", help="replace an existing report file (and figure folder)")
     p.set_defaults(func=cmd_report)
 
     p = sub.add_parser("predictions", help="hold a generator's predicted latents against the decoder's tolerance",

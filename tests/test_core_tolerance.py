@@ -137,7 +137,7 @@ def test_the_loss_tolerance_is_beside_the_absolute_one_in_the_report(lookup_code
     table = html[html.index('id="tolerances"'):html.index('id="accuracy"')]
     assert "accuracy ≥" in table and "loss from σ = 0 ≤" in table
     for t in result.tolerances + result.loss_tolerances:
-        assert f"<td>{t.label()}</td>" in table
+        assert f"<td class=t>{t.label()}</td>" in table
     one = run_sweep(lookup_codec, chunk_text("The", lookup_codec), SweepSettings(sigmas=(0.0, 0.5), repeats=1, noise="isotropic"))
     html = build_report(sweeps=[one])
     assert "too few tokens" in html and "no tolerance is resolvable on 1 token" in html
