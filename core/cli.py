@@ -388,7 +388,18 @@ def cmd_report(args: argparse.Namespace) -> int:
         if not files:
             announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter))
         points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter))
-    sections = report_sections(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise)
+    extra = []
+    if args.predictions:
+        from core.analyses.predictions import PredictionsError, analyse_predictions, read_predictions, report_section
+
+        predictions = read_predictions(args.predictions)
+        matching = [c for c in (codecs if files else []) if c.sha256 == predictions.codec_sha256]
+        if not matching:
+            raise PredictionsError(f"{args.predictions} was made for the codec with sha256 {predictions.codec_sha256[:12]}…, "
+                                   "and no checkpoint given to report has it; give that checkpoint too.")
+        extra.append(report_section(analyse_predictions(matching[0], predictions, repeats=settings.repeats, seed=settings.seed)))
+    sections = report_sections(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise,
+                               extra_sections=extra)
     html = render_report(sections, title=args.title)
     with Outputs(args.force) as outputs:  # the page and its figure folder appear together, or neither
         outputs.file(out, is_report_file).write_text(html, encoding="utf-8")
@@ -521,6 +532,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     add_sweep_arguments(p, noise_choices=COMPARISON_NOISES)
     p.add_argument("--trend", metavar="FOLDER", help="also sweep a folder of training checkpoints")
+    p.add_argument("--predictions", metavar="FILE", help="add a Generator errors section for this predictions file "
+                   "(made for one of the checkpoints given)")
     p.add_argument("--title", default="chunkscope report")
     p.add_argument("--out", default="report.html", help="the HTML file to write (default: report.html)")
     p.add_argument("--figures", metavar="DIR", help="also write every figure of the report as DIR/<name>.pdf (with DIR/figures.json naming each)")

@@ -194,3 +194,20 @@ def test_command_writes_the_documented_keys_and_csvs_and_refuses_to_overwrite(to
     assert main(args) == 2
     assert "already exists" in capsys.readouterr().err
     assert main(args + ["--force"]) == 0
+
+
+def test_report_gets_a_generator_errors_section_with_its_figures(tolerant, short, tmp_path):
+    from core.cli import main
+
+    text, chunks, mean = short
+    eps = torch.randn(len(mean), 2, mean.shape[1], generator=torch.Generator().manual_seed(9))
+    latents = (mean.unsqueeze(1) + 0.7 * mean.square().mean(0).sqrt() * eps).numpy()
+    preds = tmp_path / "preds.safetensors"
+    write_predictions(preds, latents, chunks.ids().numpy(), tolerant.sha256, "report test", text=text)
+    (tmp_path / "text.txt").write_text(text, encoding="utf-8")
+    out = tmp_path / "r.html"
+    assert main(["report", str(SAMPLES / "tolerant.safetensors"), "--text", str(tmp_path / "text.txt"), "--sigmas", "0,0.5,1",
+                 "--repeats", "1", "--quiet", "--predictions", str(preds), "--out", str(out)]) == 0
+    html = out.read_text(encoding="utf-8")
+    assert "Generator errors" in html and "the generator&#x27;s errors are the size of data-scale σ" in html.lower()
+    assert html.count("<svg") >= 2

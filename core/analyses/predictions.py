@@ -548,3 +548,55 @@ def wrong_levels(result: PredictionsResult) -> np.ndarray:
     """Per token, for colouring the text: 0 right in every sample, 1 wrong in some, 2 wrong in at least half."""
     rate = result.token_wrong_rate
     return np.where(rate >= 0.5, 2, np.where(rate > 0, 1, 0)).astype(np.int8)
+
+
+def report_section(result: PredictionsResult):
+    """The HTML report's section for one predictions analysis: the numbers, the verdict and two figures."""
+    from html import escape
+
+    from core.outputs.figures import Guide, Line, NamedFigure, ReportSection, histogram, line_plot
+
+    s, prov = result.summary, result.provenance
+    curves = [c for c in result.sweep.curves if c.sigma > 0]
+    lines = [Line("random data-scale noise", [c.sigma for c in curves], [c.token_accuracy for c in curves],
+                  band=([c.accuracy_low for c in curves], [c.accuracy_high for c in curves]), points=False)]
+    if s["effective_sigma"] > 0:
+        lines.append(Line("generator", [s["effective_sigma"]], [s["decoded_accuracy"]], line=False))
+    caption = (f"{prov['codec']['name']} ({prov['codec']['sha256'][:10]}); predictions "
+               f"{Path(prov['predictions']['path']).name} ({prov['predictions']['sha256'][:10]}); "
+               f"{prov['sweep']['repeats']} repeats, seed {prov['sweep']['seed']}; chunkscope {prov['version']}")
+    curve = line_plot("Token accuracy: random noise and the generator", "σ (data-scale)", "token accuracy", lines,
+                      logx=True, fraction_y=True, vlines=[Guide(s["effective_sigma"], "effective σ")] if s["effective_sigma"] > 0 else ())
+    half = result.half_distance[np.isfinite(result.half_distance)]
+    guides = []
+    if s.get("noise_norm_at_tolerance_99") is not None and math.isfinite(s["noise_norm_at_tolerance_99"]):
+        guides.append(Guide(s["noise_norm_at_tolerance_99"], "noise norm at the 99 % tolerance"))
+    norms = histogram("Error length against the nearest-neighbour half-distance", "distance in latent space",
+                      {"generator error ‖e‖": result.error_norm.reshape(-1), "half-distance to nearest chunk": half},
+                      density=True, ylabel="density", vlines=guides)
+
+    def cell(key: str, scale: float = 1.0, digits: str = ".4g") -> str:
+        v, lo, hi = s.get(key), s.get(f"{key}_low"), s.get(f"{key}_high")
+        if v is None or not math.isfinite(v):
+            return "—"
+        out = f"{v * scale:{digits}}"
+        if lo is not None and hi is not None and math.isfinite(lo) and math.isfinite(hi):
+            out += f" ({lo * scale:{digits}} – {hi * scale:{digits}})"
+        return out
+
+    rows = [("effective σ (data-scale)", cell("effective_sigma")),
+            ("decoded accuracy, %", cell("decoded_accuracy", 100, ".3f")),
+            ("random noise of that size, %", cell("noise_accuracy_at_effective_sigma", 100, ".3f")),
+            ("structured-error factor", cell("structured_error_factor", 1, ".3g")),
+            ("energy score (latent units)", cell("energy_score")),
+            ("Brier estimate (tokens)", cell("brier_estimate")),
+            ("Brier, geometric mean over n-grams 1..4", cell("brier_ngram_geometric_mean")),
+            ("share of ‖e‖² in the top 10 directions (isotropic noise)",
+             f"{s['top10_direction_share']:.3g} ({s['top10_direction_share_isotropic']:.3g})"),
+            ("chunks × samples", f"{s['chunks']:,} × {s['samples']}")]
+    table = "<table>" + "".join(f"<tr><td class=l>{escape(a)}</td><td>{escape(b)}</td></tr>" for a, b in rows) + "</table>"
+    html = f"<p>{escape(result.verdict[0].upper() + result.verdict[1:])}</p>{table}"
+    after = f"<p class=muted>{escape(s['noise_accuracy_method'])}; {escape(s['interval_method'])}.</p>"
+    return ReportSection("predictions", "Generator errors", html,
+                         [NamedFigure("predictions-accuracy", curve, caption), NamedFigure("predictions-error-norms", norms, caption)],
+                         after)
