@@ -89,6 +89,7 @@ class Screenshot:
         self.window.workbench.error.connect(self._fail)
         self.window.compare.error.connect(self._fail)
         self.window.trend.error.connect(self._fail)
+        self.window.predictions.error.connect(self._fail)
         self.timer = QTimer()
         self.timer.setInterval(100)
         self.timer.timeout.connect(self._tick)
@@ -136,6 +137,10 @@ class Screenshot:
             elif self.view == "worstcase":
                 if not w.panels["worstcase"].run():
                     return self._fail(w.message.text() or "the worst-case search did not start")
+            elif self.view == "predictions":  # the shipped demo generator's predictions for the demo text
+                from app.state import samples_folder
+
+                w.open_predictions(str(samples_folder() / "generator" / "demo_predictions.safetensors"))
             elif self.view == "trend":  # the sample models' folder stands in for a training run
                 from app.state import samples_folder
 
@@ -157,6 +162,9 @@ class Screenshot:
                     return
             elif self.view == "worstcase":
                 if w.panels["worstcase"].busy() or w.panels["worstcase"].result is None:
+                    return
+            elif self.view == "predictions":
+                if w.predictions.is_running() or w.predictions.result is None:
                     return
             elif entry.sweep is None:
                 return

@@ -19,6 +19,7 @@ from app.run_on import RunOn
 from app.panel_latent import LatentPanel
 from app.panel_live import LivePanel
 from app.panel_models import ModelsPanel
+from app.panel_predictions import PredictionsPanel
 from app.panel_sweep import SweepPanel
 from app.panel_tokens import TokensPanel
 from app.panel_trend import TrendPanel
@@ -26,14 +27,15 @@ from app.panel_worstcase import WorstCasePanel
 from app.state import Workbench, default_text_path, sample_paths
 from app.style import mono_font
 from app.workers import Runner
+from core.analyses.prediction_file import is_predictions_file
 from core.codecs.onnx import MANIFEST, is_onnx_codec
 from core.errors import ChunkscopeError
 from core.engine.sweep import SweepResult
 from core.engine.text import text_sha256
 
-VIEWS = ("live", "sweep", "tokens", "latent", "compare", "trend", "worstcase")
+VIEWS = ("live", "sweep", "tokens", "latent", "compare", "trend", "worstcase", "predictions")
 VIEW_TITLES = {"live": "Perturb live", "sweep": "Sweep", "tokens": "Token failures", "latent": "Latent space",
-               "compare": "Compare", "trend": "Training run", "worstcase": "Worst case"}
+               "compare": "Compare", "trend": "Training run", "worstcase": "Worst case", "predictions": "Generator errors"}
 MAX_RECENT = 10
 START_AFTER_SHOW_MS = 1000  # queued work starts at the latest this long after the window is shown
 TEXT_SUFFIXES = {".txt", ".md", ".text", ".rst", ".csv", ".json", ".py", ".html"}
@@ -129,6 +131,8 @@ class MainWindow(QMainWindow):
         self.trend.error.connect(self.show_error)
         self.trend.finished.connect(
             lambda points: self.statusBar().showMessage(f"training run measured: {len(points)} checkpoints", 6000))
+        self.predictions = PredictionsPanel(self.workbench)
+        self.predictions.error.connect(self.show_error)
         self._compare_key: tuple = ()
         self._pending_sweeps: list[SweepResult] = []
         self.workbench.entries_changed.connect(self._feed_compare)
@@ -138,7 +142,8 @@ class MainWindow(QMainWindow):
         self.tabs = QTabWidget()
         self.tabs.setDocumentMode(True)
         self.panels = {"live": self.live, "sweep": self.sweep, "tokens": self.tokens, "latent": self.latent,
-                       "compare": self.compare, "trend": self.trend, "worstcase": WorstCasePanel(self.workbench)}
+                       "compare": self.compare, "trend": self.trend, "worstcase": WorstCasePanel(self.workbench),
+                       "predictions": self.predictions}
         for name in VIEWS:
             self.tabs.addTab(self.panels[name], VIEW_TITLES[name])
 
@@ -209,6 +214,9 @@ class MainWindow(QMainWindow):
         file_menu.addAction(action)
         action = QAction("Open sweep results folder…", self)
         action.triggered.connect(self.open_sweep_folder_dialog)
+        file_menu.addAction(action)
+        action = QAction("Open predictions…", self)
+        action.triggered.connect(self.open_predictions_dialog)
         file_menu.addAction(action)
         action = QAction("Open workspace…", self)
         action.triggered.connect(self.open_workspace_dialog)
@@ -379,9 +387,20 @@ class MainWindow(QMainWindow):
                 self.open_checkpoint(path)
             elif Path(path).suffix.lower() in TEXT_SUFFIXES:
                 self.workbench.open_text_file(path)
+            elif is_predictions_file(path):
+                self.open_predictions(path)
             else:
                 self.open_checkpoint(path)
         event.acceptProposedAction()
+
+    def open_predictions_dialog(self) -> None:
+        self.show_view("predictions")
+        self.predictions.choose_file()
+
+    def open_predictions(self, path: str) -> None:
+        self.show_view("predictions")
+        self.message.hide()
+        self.predictions.open_predictions(path)
 
     # ---- feeding the compare and training-run views -----------------------------------
 

@@ -441,6 +441,15 @@ def cmd_report(args: argparse.Namespace) -> int:
         if not files:
             announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter))
         points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter))
+    if args.predictions:
+        from core.analyses.predictions import PredictionsError, analyse_predictions, read_predictions, report_section
+
+        predictions = read_predictions(args.predictions)
+        matching = [c for c in (codecs if files else []) if c.sha256 == predictions.codec_sha256]
+        if not matching:
+            raise PredictionsError(f"{args.predictions} was made for the codec with sha256 {predictions.codec_sha256[:12]}…, "
+                                   "and no checkpoint given to report has it; give that checkpoint too.")
+        extra.append(report_section(analyse_predictions(matching[0], predictions, repeats=settings.repeats, seed=settings.seed)))
     sections = report_sections(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise,
                                extra_sections=extra)
     html = render_report(sections, title=args.title)
@@ -503,6 +512,44 @@ def cmd_worstcase(args: argparse.Namespace) -> int:
     result.write(out, force=args.force)
     print(f"wrote {out}/ (worst_case.json, worst_case.csv)", file=sys.stderr)
     print_worst_case(result)
+
+
+def print_predictions(result, stream=None) -> None:
+    """The short verdict of `predictions`: the key numbers, then the verdict in words."""
+    stream = stream or sys.stdout
+    s = result.summary
+
+    def iv(key: str, scale: float = 1.0, digits: str = ".3g") -> str:
+        low, high = s.get(f"{key}_low"), s.get(f"{key}_high")
+        if s.get(key) is None:
+            return "—"
+        text = f"{s[key] * scale:{digits}}"
+        return text + (f" ({low * scale:{digits}}–{high * scale:{digits}})" if low is not None and high is not None else "")
+
+    print(f"{s['chunks']:,} chunks × {s['samples']} samples, {s['tokens']:,} tokens", file=stream)
+    print(f"  effective sigma (data-scale)      {iv('effective_sigma')}", file=stream)
+    print(f"  decoded accuracy                  {iv('decoded_accuracy', 100, '.2f')} %", file=stream)
+    noise = s["noise_accuracy_at_effective_sigma"]
+    print(f"  random noise of that size         {'—' if noise is None else f'{100 * noise:.2f}'} %", file=stream)
+    print(f"  structured-error factor           {iv('structured_error_factor')}", file=stream)
+    if s["energy_score"] is not None:
+        print(f"  energy score (latent units)       {iv('energy_score', 1, '.4g')}", file=stream)
+        print(f"  Brier estimate (tokens)           {iv('brier_estimate', 1, '.4g')}", file=stream)
+    print(result.verdict, file=stream)
+
+
+def cmd_predictions(args: argparse.Namespace) -> int:
+    from core.analyses.predictions import PREDICTIONS_FOLDER, analyse_predictions, read_predictions
+
+    out = Path(args.out)
+    _check_outputs([out], args.force, PREDICTIONS_FOLDER, folder=True)
+    predictions = read_predictions(args.predictions)
+    (codec,) = open_checkpoints([args.checkpoint], args.adapter)
+    progress = None if args.quiet else TerminalProgress("sweep")
+    result = analyse_predictions(codec, predictions, repeats=args.repeats, seed=args.seed, sweep_progress=progress)
+    result.write(out, force=args.force)
+    print(f"wrote {out}/ (predictions.json, " + ", ".join(result.csv_files()) + ")", file=sys.stderr)
+    print_predictions(result)
     return 0
 
 
@@ -596,6 +643,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     add_sweep_arguments(p, noise_choices=COMPARISON_NOISES)
     p.add_argument("--trend", metavar="FOLDER", help="also sweep a folder of training checkpoints")
+    p.add_argument("--predictions", metavar="FILE", help="add a Generator errors section for this predictions file "
+                   "(made for one of the checkpoints given)")
     p.add_argument("--title", default="chunkscope report")
     p.add_argument("--out", default="report.html", help="the HTML file to write (default: report.html)")
     p.add_argument("--worst-case", action="store_true", help="add a worst-case section per checkpoint (the smallest "
@@ -619,6 +668,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_worstcase)
+
+    p = sub.add_parser("predictions", help="hold a generator's predicted latents against the decoder's tolerance",
+                       description="Decode a generator's predictions (a predictions file, see DESIGN.md) with the codec they "
+                       "were made for, sweep the same chunks under data-scale noise, and write DIR/predictions.json and CSVs: "
+                       "effective sigma, decoded accuracy, the accuracy random noise of that size gives, the structured-error "
+                       "factor, error geometry and, with several samples per chunk, the energy score and Brier estimates.")
+    p.add_argument("checkpoint")
+    p.add_argument("predictions", metavar="PREDICTIONS", help="a predictions .safetensors file")
+    p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
+    p.add_argument("--repeats", type=int, default=4, help="noise draws per chunk and sigma in the sweep (default 4)")
+    p.add_argument("--seed", type=int, default=0, help="noise seed of the sweep (default 0)")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--out", default="predictions", help="output folder (default: predictions)")
+    p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    p.set_defaults(func=cmd_predictions)
 
     for command in sub.choices.values():  # --debug also after the command; absent there, the top level's value stands
         command.add_argument("--debug", action="store_true", default=argparse.SUPPRESS, help=DEBUG_HELP)

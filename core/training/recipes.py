@@ -92,6 +92,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     group = parser.add_mutually_exclusive_group(required=True)
     group.add_argument("--recipe", choices=sorted(RECIPES), help="train one named recipe")
     group.add_argument("--all", action="store_true", help="rebuild every sample model")
+    group.add_argument("--generator", action="store_true", help="train the demo next-vector generator on the tolerant sample's "
+                       "latents and rewrite sample_models/generator/demo_predictions.safetensors (rerun after retraining tolerant)")
     group.add_argument("--table", metavar="FOLDER", help="print the Markdown table of the checkpoints' cards in FOLDER")
     parser.add_argument("--out", help="checkpoint path for --recipe (default: sample_models/NAME.safetensors)")
     parser.add_argument("--out-dir", default="sample_models", help="folder for --all")

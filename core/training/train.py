@@ -385,6 +385,12 @@ def run_from_args(args: argparse.Namespace) -> int:
     if getattr(args, "table", None):
         print(card_table(args.table))
         return 0
+    if getattr(args, "generator", False):
+        from core.training.generator import DEFAULT_OUT, GeneratorRecipe, train_generator
+
+        recipe = GeneratorRecipe(**{key: getattr(args, key) for key in ("steps", "minutes", "seed") if getattr(args, key, None) is not None})
+        train_generator(out=args.out or DEFAULT_OUT, recipe=recipe)
+        return 0
     names = sorted(RECIPES) if args.all else [args.recipe]
     corpus, tokenizer = shared_data(RECIPES[names[0]].vocab_size)
     for name in names:
