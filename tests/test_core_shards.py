@@ -141,3 +141,13 @@ def test_misaligned_gapped_or_foreign_shards_are_refused(lookup, tokenizer):
         merge_shards(plan, [first, last], chunks, lookup)
     with pytest.raises(ChunkscopeError, match="stop at chunk 256"):
         merge_shards(plan, [first], chunks, lookup)
+
+
+def test_a_shard_of_another_plan_is_refused_not_cut_short(lookup):
+    chunks = chunk_text(TEXT, lookup)
+    plan = plan_sweep(lookup, chunks, SweepSettings(sigmas=(0.0, 0.5), repeats=1, noise="isotropic"))
+    wider = plan_sweep(lookup, chunks, SweepSettings(sigmas=(0.0, 0.5, 1.0), repeats=1, noise="isotropic"))
+    shards = [sweep_shard(lookup, chunks, plan, a, min(a + NOISE_BLOCK, plan.n_chunks)) for a in range(0, plan.n_chunks, NOISE_BLOCK)]
+    shards[1] = sweep_shard(lookup, chunks, wider, NOISE_BLOCK, 2 * NOISE_BLOCK)
+    with pytest.raises(ChunkscopeError, match="was not swept by this plan"):
+        merge_shards(plan, shards, chunks, lookup)

@@ -181,13 +181,19 @@ def codec_ticket(codec, adapter: str | None = None) -> CodecTicket:
 _OPENED: "OrderedDict[tuple, Any]" = OrderedDict()  # per worker process: the codecs its recent shards opened
 
 
+_PRIVATE_FOLDER: list[Path] = []  # this worker process's own folder for shipped adapter files
+
+
 def _adapter_file(ticket: AdapterTicket) -> Path:
-    """The adapter's bytes as a file in this machine's temporary folder, under their sha256."""
-    folder = Path(tempfile.gettempdir()) / "chunkscope-adapters" / ticket.sha256
+    """The adapter's bytes as a file under their sha256, in a folder only this process can write
+    (mkdtemp, mode 0700): a shared temporary path could be swapped between the hash check and the import."""
+    if not _PRIVATE_FOLDER:
+        _PRIVATE_FOLDER.append(Path(tempfile.mkdtemp(prefix="chunkscope-adapters-")))
+    folder = _PRIVATE_FOLDER[0] / ticket.sha256
     path = folder / ticket.file_name
     if not path.is_file() or hashlib.sha256(path.read_bytes()).hexdigest() != ticket.sha256:
         folder.mkdir(parents=True, exist_ok=True)
-        part = folder / f".{ticket.file_name}.{os.getpid()}.part"
+        part = folder / f".{ticket.file_name}.part"
         part.write_bytes(ticket.source)
         os.replace(part, path)
     return path

@@ -661,6 +661,10 @@ def merge_shards(
         if sh.start_chunk != edge:
             raise ChunkscopeError(f"the shards of the sweep of {plan.codec_name} do not cover chunks {edge}..{sh.start_chunk} exactly once.")
         edge = sh.stop_chunk
+        tokens = min(sh.stop_chunk * plan.chunk_size, plan.n_tokens) - sh.start_chunk * plan.chunk_size
+        if len(sh.accumulators) != len(plan.settings.sigmas) or sh.wrong_counts.shape != (tokens, len(plan.settings.sigmas)):
+            raise ChunkscopeError(f"the shard of chunks {sh.start_chunk}..{sh.stop_chunk} was not swept by this plan of "
+                                  f"{plan.codec_name}: it holds other sigmas or other tokens.")
     if edge != plan.n_chunks:
         raise ChunkscopeError(f"the shards of the sweep of {plan.codec_name} stop at chunk {edge} of {plan.n_chunks}.")
     if chunks.text_sha256 != plan.text_sha256:
