@@ -102,7 +102,7 @@ _SAFE_CUT = re.compile(r"(?<=\S)\n(?=\S)")
 def _splits_at_lone_newlines(tokenizer) -> bool:
     """Whether the tokenizer's pieces never cross a newline between two non-space characters.
 
-    True for a byte-level BPE with the GPT-2 split pattern and no normalizer (this project's
+    True for a byte-level BPE with the ByteLevel pre-tokenizer's own split regex and no normalizer (this project's
     tokenizers): there a lone "\n" is its own pre-token whether or not the text ends after it,
     so the text tokenizes piece by piece exactly as it does whole."""
     try:
