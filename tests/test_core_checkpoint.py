@@ -157,7 +157,8 @@ def test_integer_tensor_is_refused(tmp_path, small_codec):
 
 
 def test_missing_file(tmp_path):
-    _expect(tmp_path / "nowhere.safetensors", "does not exist")
+    # the whole path the user typed, not only its last part: which folder was looked in matters
+    _expect(tmp_path / "nowhere.safetensors", str(tmp_path / "nowhere.safetensors"), "does not exist")
 
 
 def test_header_info_is_read_without_the_weights(tmp_path, small_codec):

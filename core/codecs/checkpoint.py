@@ -179,7 +179,7 @@ def read_checkpoint_info(path: str | os.PathLike) -> CheckpointInfo:
     path = Path(path)
     name = path.name
     if not path.is_file():
-        raise CheckpointError(f"{name} does not exist or is not a file.")
+        raise CheckpointError(f"{path} does not exist or is not a file.")
     header = _read_header(path)
     metadata = header.get("__metadata__") or {}
     for key in REQUIRED_KEYS:
