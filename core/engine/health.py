@@ -122,7 +122,8 @@ def latent_health(
     n, dim = chunks.num_chunks, codec.latent_dim
     moments, sumsq = _Moments(dim), np.zeros(dim)
     kl_sum = std_sum = None
-    kept = []
+    # filled in place: small tensors kept per block would pin each block's freed memory (heap fragmentation)
+    means = torch.empty(len(first), dim)
     for start in range(0, n, ENCODE_BATCH):
         stop = min(start + ENCODE_BATCH, n)
         if encoded is not None:
@@ -141,10 +142,9 @@ def latent_health(
             kl_sum, std_sum = (kl, st) if kl_sum is None else (kl_sum + kl, std_sum + st)
         lo, hi = np.searchsorted(first, [start, stop])
         if hi > lo:
-            kept.append(mean[torch.from_numpy(first[lo:hi] - start)])
+            means[lo:hi] = mean[torch.from_numpy(first[lo:hi] - start)]
     scale = LatentScale(sumsq, n)
     variance = moments.variance().astype(np.float32)
-    means = torch.cat(kept) if kept else torch.zeros(0, dim)
     half = nearest_distinct_half_distance(means, block=1024, should_stop=should_stop) if len(means) > 1 else torch.zeros(0)
     half = half[torch.isfinite(half)]
     return LatentHealth(
