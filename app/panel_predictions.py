@@ -152,6 +152,10 @@ class PredictionsPanel(QWidget):
 
         self.result = result
         self.status.setText("")
+        for path, entry in self.workbench.entries.items():  # the side panel shows the codec that decoded them
+            if entry.codec is not None and entry.codec.sha256 == result.provenance["codec"]["sha256"]:
+                self.workbench.select(path)
+                break
         s, prov = result.summary, result.provenance
         note = prov["predictions"]["note"]
         self.file_label.setText(f"{Path(prov['predictions']['path']).name}: {s['chunks']:,} chunks × {s['samples']} samples, "
