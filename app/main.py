@@ -133,11 +133,11 @@ class Screenshot:
                 w.compare.restore({"start": 0.02, "stop": 2.0, "points": 8, "spacing": "log", "zero": True, "repeats": 1})
                 if not w.compare.run():
                     return self._fail(w.message.text() or "the comparison did not start")
-            elif self.view == "trend":  # the sample models' folder stands in for a training run
-                from app.state import samples_folder
+            elif self.view == "trend":  # the shipped sample run
+                from app.panel_trend import default_run_folder
 
                 w.trend.restore({"start": 0.02, "stop": 2.0, "points": 8, "spacing": "log", "zero": True, "repeats": 1})
-                if not w.trend.run_folder(samples_folder()):
+                if not w.trend.run_folder(default_run_folder() or w.trend.folder):
                     return self._fail(w.message.text() or "the training-run trend did not start")
             return
         if self.stage == "working":

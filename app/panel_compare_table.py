@@ -32,8 +32,11 @@ class ToleranceTable(QWidget):
         t.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
         t.setFocusPolicy(Qt.FocusPolicy.NoFocus)
         t.verticalHeader().setDefaultSectionSize(18)
-        t.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
-        t.horizontalHeader().setTextElideMode(Qt.TextElideMode.ElideMiddle)
+        # columns as wide as their names and values (a scroll bar when they do not fit), never cut mid-word
+        t.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
+        t.horizontalHeader().setStretchLastSection(True)
+        t.horizontalHeader().setTextElideMode(Qt.TextElideMode.ElideNone)
+        t.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAsNeeded)
         t.setVerticalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAsNeeded)
         t.setToolTip("σ at accuracy ≥ a level: the largest σ before token accuracy first drops below it; σ at "
                      "loss ≤ a level: the largest σ before it falls that many points below its σ = 0 value. Both "
@@ -94,6 +97,8 @@ class ToleranceTable(QWidget):
                     noise, kind, level = key
                     value = tolerance_label(next((x for x in lists[(noise, kind)] if abs(x.level - level) < 1e-12), None))
                 item = QTableWidgetItem(value)
+                if i == 0 and key is None:
+                    item.setToolTip(f"sha256 {row.sha256}")
                 item.setTextAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
                 if key is not None and key[0] == "data-scale":
                     font = item.font()
@@ -103,7 +108,9 @@ class ToleranceTable(QWidget):
                     item.setForeground(QColor(PALETTE.ink_faint))
                     item.setToolTip("absolute σ: not comparable across these checkpoints, their latent scales differ")
                 t.setItem(i, j, item)
-        height = t.horizontalHeader().sizeHint().height() + sum(t.rowHeight(i) for i in range(t.rowCount())) + 2 * t.frameWidth()
+        t.resizeColumnsToContents()
+        scroll = t.horizontalScrollBar().sizeHint().height() if t.horizontalHeader().length() > t.viewport().width() else 0
+        height = scroll + t.horizontalHeader().sizeHint().height() + sum(t.rowHeight(i) for i in range(t.rowCount())) + 2 * t.frameWidth()
         t.setFixedHeight(height + 2)
         notes = status_notes([x for row in c.tolerances for x in row.absolute + row.absolute_loss + row.data_scale
                               + row.data_scale_loss])
