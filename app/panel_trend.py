@@ -370,6 +370,9 @@ class TrendPanel(QWidget):
             item.setLogMode(x=log_x, y=item is lat_item)
             item.setLabel("bottom", "training step (log scale)" if log_x else "training step", color=p.ink_soft,
                           **{"font-size": "8pt"})
+            # on a log axis, ticks at the checkpoints' own steps (pyqtgraph's minor log ticks overprint)
+            item.getAxis("bottom").setTicks([[(float(np.log10(x)), f"{x:,}") for x in sorted(set(steps))], []]
+                                            if log_x else None)
         noise = self.settings_used.noise if self.settings_used is not None else ""
         tol_item.setLabel("left", sigma_unit(noise), color=p.ink_soft, **{"font-size": "8pt"})
         legend(tol_item, offset=(10, 10))
@@ -419,7 +422,9 @@ class TrendPanel(QWidget):
         tol_item.setXRange(low - pad, high + pad, padding=0)  # the other plots follow (x-linked)
         tol_item.setYRange(0, highest * 1.4 if highest > 0 else 1.0, padding=0)  # σ starts at 0; room for the legend
         acc_item.enableAutoRange(y=True)
-        lat_item.enableAutoRange(y=True)
+        shown = [v for pt in good for v in (pt.latent_rms, pt.kl, pt.active_dims) if v is not None and v > 0]
+        if shown:  # log axis: room above the highest series for the legend
+            lat_item.setYRange(np.log10(min(shown)) - 0.3, np.log10(max(shown)) + 2.3, padding=0)
 
     # ---- for export and reports ----------------------------------------------------------
 
