@@ -32,11 +32,9 @@ class ToleranceTable(QWidget):
         t.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
         t.setFocusPolicy(Qt.FocusPolicy.NoFocus)
         t.verticalHeader().setDefaultSectionSize(18)
-        # columns as wide as their names and values (a scroll bar when they do not fit), never cut mid-word
-        t.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
-        t.horizontalHeader().setStretchLastSection(True)
+        # the columns share the width; a header is the role over the whole name (two lines), never elided
+        t.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
         t.horizontalHeader().setTextElideMode(Qt.TextElideMode.ElideNone)
-        t.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAsNeeded)
         t.setVerticalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAsNeeded)
         t.setToolTip("σ at accuracy ≥ a level: the largest σ before token accuracy first drops below it; σ at "
                      "loss ≤ a level: the largest σ before it falls that many points below its σ = 0 value. Both "
@@ -92,7 +90,7 @@ class ToleranceTable(QWidget):
                 if key is None:
                     if i >= 3:
                         continue
-                    value = [row.sha256[:10], f"{row.latent_rms:.4g}", fmt_percent(row.accuracy_at_zero, 3)][i]
+                    value = [row.sha256[:8], f"{row.latent_rms:.4g}", fmt_percent(row.accuracy_at_zero, 3)][i]
                 else:
                     noise, kind, level = key
                     value = tolerance_label(next((x for x in lists[(noise, kind)] if abs(x.level - level) < 1e-12), None))
@@ -108,9 +106,7 @@ class ToleranceTable(QWidget):
                     item.setForeground(QColor(PALETTE.ink_faint))
                     item.setToolTip("absolute σ: not comparable across these checkpoints, their latent scales differ")
                 t.setItem(i, j, item)
-        t.resizeColumnsToContents()
-        scroll = t.horizontalScrollBar().sizeHint().height() if t.horizontalHeader().length() > t.viewport().width() else 0
-        height = scroll + t.horizontalHeader().sizeHint().height() + sum(t.rowHeight(i) for i in range(t.rowCount())) + 2 * t.frameWidth()
+        height = t.horizontalHeader().sizeHint().height() + sum(t.rowHeight(i) for i in range(t.rowCount())) + 2 * t.frameWidth()
         t.setFixedHeight(height + 2)
         notes = status_notes([x for row in c.tolerances for x in row.absolute + row.absolute_loss + row.data_scale
                               + row.data_scale_loss])

@@ -177,7 +177,7 @@ class TokensPanel(QWidget):
         header = self.table.horizontalHeader()
         header.setSectionResizeMode(QHeaderView.ResizeMode.Interactive)
         header.setStretchLastSection(True)
-        header.setTextElideMode(Qt.TextElideMode.ElideRight)
+        header.setTextElideMode(Qt.TextElideMode.ElideNone)  # Qt measures a two-line header as one line when eliding
         header.setToolTip("median σ counts tokens that never broke as infinite; mean σ averages those that broke")
         self.table.itemSelectionChanged.connect(self._row_picked)
         self.table.setMinimumHeight(200)
