@@ -96,3 +96,16 @@ def test_kl_and_active_dims_match_their_definitions():
         variance = np.var(mean.double().numpy(), axis=0)
         assert point.active_dims == int((variance > ACTIVE_THRESHOLD).sum())
     assert 0 < pts[-1].kl < pts[0].kl  # the KL term pulls it down through training (measured 67 -> 51 nats)
+
+
+def test_details_rows_of_a_run_checkpoint_say_its_step_and_show_no_machine_path():
+    from core.codecs.summary import card_rows, codec_rows
+
+    codec = load_codec(paths()[0])
+    rows = dict(codec_rows(codec))
+    steps = sorted(load_codec(p).card["step"] for p in paths())
+    assert rows["saved at step"] == f"{steps[0]:,} of {steps[-1]:,}"
+    assert float(rows["training loss"]) == pytest.approx(codec.card["training_loss"], rel=1e-3)
+    assert list(dict(codec_rows(codec)))[:2] == ["architecture", "sizes"]  # what a researcher reads first
+    every = codec_rows(codec) + card_rows(codec.card)
+    assert not any(str(RUN.parent.parent) in v for _, v in every)  # this checkout's path is no fact of the model
