@@ -141,11 +141,11 @@ class Screenshot:
                 from app.state import samples_folder
 
                 w.open_predictions(str(samples_folder() / "generator" / "demo_predictions.safetensors"))
-            elif self.view == "trend":  # the sample models' folder stands in for a training run
-                from app.state import samples_folder
+            elif self.view == "trend":  # the shipped sample run
+                from app.panel_trend import default_run_folder
 
                 w.trend.restore({"start": 0.02, "stop": 2.0, "points": 8, "spacing": "log", "zero": True, "repeats": 1})
-                if not w.trend.run_folder(samples_folder()):
+                if not w.trend.run_folder(default_run_folder() or w.trend.folder):
                     return self._fail(w.message.text() or "the training-run trend did not start")
             return
         if self.stage == "working":

@@ -32,8 +32,9 @@ class ToleranceTable(QWidget):
         t.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
         t.setFocusPolicy(Qt.FocusPolicy.NoFocus)
         t.verticalHeader().setDefaultSectionSize(18)
+        # the columns share the width; a header is the role over the whole name (two lines), never elided
         t.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
-        t.horizontalHeader().setTextElideMode(Qt.TextElideMode.ElideMiddle)
+        t.horizontalHeader().setTextElideMode(Qt.TextElideMode.ElideNone)
         t.setVerticalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAsNeeded)
         t.setToolTip("σ at accuracy ≥ a level: the largest σ before token accuracy first drops below it; σ at "
                      "loss ≤ a level: the largest σ before it falls that many points below its σ = 0 value. Both "
@@ -89,11 +90,13 @@ class ToleranceTable(QWidget):
                 if key is None:
                     if i >= 3:
                         continue
-                    value = [row.sha256[:10], f"{row.latent_rms:.4g}", fmt_percent(row.accuracy_at_zero, 3)][i]
+                    value = [row.sha256[:8], f"{row.latent_rms:.4g}", fmt_percent(row.accuracy_at_zero, 3)][i]
                 else:
                     noise, kind, level = key
                     value = tolerance_label(next((x for x in lists[(noise, kind)] if abs(x.level - level) < 1e-12), None))
                 item = QTableWidgetItem(value)
+                if i == 0 and key is None:
+                    item.setToolTip(f"sha256 {row.sha256}")
                 item.setTextAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
                 if key is not None and key[0] == "data-scale":
                     font = item.font()

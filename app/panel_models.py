@@ -65,7 +65,7 @@ class DetailsView(QScrollArea):
     short values on one line (long hashes elided in the middle, full value in the tooltip),
     prose wrapped; nested card fields arrive flattened with dotted keys."""
 
-    KEY_WIDTH = 125
+    KEY_WIDTH = 112
 
     def __init__(self):
         super().__init__()

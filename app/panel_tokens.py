@@ -17,7 +17,7 @@ from app.controls import card, page_layout
 from app.export import add_export_menu
 from app.state import Workbench
 from app.style import (
-    PALETTE, fmt_sigma, legend, level_colours, log_ticks, pen, plot_widget, readable_on, series_colours, show_piece, ui_font,
+    PALETTE, fmt_sigma, fmt_tick, legend, level_colours, log_ticks, pen, plot_widget, readable_on, series_colours, show_piece, ui_font,
 )
 from app.tokentext import TokenText, char_format
 from app.workers import Task
@@ -83,7 +83,7 @@ class ColourScale(QWidget):
         for i in ticks:
             x = left + (i + 0.5) * step
             painter.drawLine(int(x), 15, int(x), 18)
-            painter.drawText(QRectF(x - 30, 19, 60, 14), Qt.AlignmentFlag.AlignHCenter, fmt_sigma(self.sigmas[i]))
+            painter.drawText(QRectF(x - 30, 19, 60, 14), Qt.AlignmentFlag.AlignHCenter, fmt_tick(self.sigmas[i]))
         x0 = left + bar_w + 16
         painter.fillRect(QRectF(x0, 2, 22, 12), QColor(p.never_broke))
         painter.setPen(QColor(p.line))
@@ -166,7 +166,7 @@ class TokensPanel(QWidget):
         label.setObjectName("section")
         rv.addWidget(label)
         self.table = QTableWidget(0, 6)
-        self.table.setHorizontalHeaderLabels(["token", "count", "broke", "median σ", "mean σ", "most common wrong decode"])
+        self.table.setHorizontalHeaderLabels(["token", "count", "broke", "median σ", "mean σ", "most common\nwrong decode"])
         self.table.verticalHeader().setVisible(False)
         self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
@@ -177,6 +177,7 @@ class TokensPanel(QWidget):
         header = self.table.horizontalHeader()
         header.setSectionResizeMode(QHeaderView.ResizeMode.Interactive)
         header.setStretchLastSection(True)
+        header.setTextElideMode(Qt.TextElideMode.ElideNone)  # Qt measures a two-line header as one line when eliding
         header.setToolTip("median σ counts tokens that never broke as infinite; mean σ averages those that broke")
         self.table.itemSelectionChanged.connect(self._row_picked)
         self.table.setMinimumHeight(200)

@@ -37,7 +37,16 @@ DEFAULTS = {"start": 0.01, "stop": 2.0, "points": 12, "spacing": "log", "zero": 
 # the tolerance columns and series: accuracy ≥ each level, then loss ≤ each level
 KIND_LEVELS = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
 COLUMNS = ("checkpoint", "step", "step from", "accuracy at σ = 0", *[level_name(lv, k) for k, lv in KIND_LEVELS],
-           "latent RMS", "problem")
+           "latent RMS", "KL (nats)", "active dims", "problem")
+RUN_FOLDER_NAME = "tolerant-run"  # the shipped training run under the sample models' folder
+
+
+def default_run_folder() -> str:
+    """The shipped sample run's folder, or "" when it is not there."""
+    from app.state import samples_folder
+
+    folder = samples_folder() / RUN_FOLDER_NAME
+    return str(folder) if folder.is_dir() else ""
 
 
 class _Cell(QTableWidgetItem):
@@ -87,7 +96,8 @@ class TrendPanel(QWidget):
         self.runner = runner or Runner(self)
         self.text = ""
         self.text_source = ""
-        self.folder = ""
+        self.folder = default_run_folder()
+        self._auto_run = bool(self.folder)  # the shipped run is measured the first time the view is shown
         self.adapter = ""  # the adapter that opens the run's checkpoints ("" for built-in and ONNX)
         # asks the user before an adapter's code runs; returns its sha256, or "" (the window sets it)
         self.adapter_allowed: Callable[[str], str] | None = None
@@ -96,7 +106,16 @@ class TrendPanel(QWidget):
         self.runs = LatestTask(self.runner, self)
         self._build()
         self.restore(DEFAULTS)
+        if self.folder:
+            self.folder_label.setText(f"{self.folder}  ·  the shipped sample run (choose another folder to follow yours)")
+            self.folder_label.setToolTip(self.folder)
         self._redraw()
+
+    def showEvent(self, event) -> None:  # noqa: N802 (Qt)
+        super().showEvent(event)
+        if self._auto_run and not self.points and not self.runs.running():
+            self._auto_run = False
+            self.run_folder(self.folder)
 
     # ---- layout --------------------------------------------------------------------------
 
@@ -140,14 +159,21 @@ class TrendPanel(QWidget):
         pl.setSpacing(10)
         self.tolerance_plot = plot_widget("Tolerance through training", "training step", "σ")
         self.accuracy_plot = plot_widget("Token accuracy at σ = 0", "training step", "accuracy")
+        self.latent_plot = plot_widget("Latent through training", "training step", "value (log scale)")
         self.accuracy_plot.getPlotItem().setXLink(self.tolerance_plot.getPlotItem())
-        for plot, name in ((self.tolerance_plot, "trend-tolerance"), (self.accuracy_plot, "trend-accuracy")):
+        self.latent_plot.getPlotItem().setXLink(self.tolerance_plot.getPlotItem())
+        for plot, name in ((self.tolerance_plot, "trend-tolerance"), (self.accuracy_plot, "trend-accuracy"),
+                           (self.latent_plot, "trend-latent")):
             plot.setObjectName("card")
             for axis in ("left", "bottom"):
                 plot.getPlotItem().getAxis(axis).enableAutoSIPrefix(False)
             add_export_menu(plot, self.caption, name)
         pl.addWidget(self.tolerance_plot, 3)
-        pl.addWidget(self.accuracy_plot, 2)
+        right = QSplitter(Qt.Orientation.Vertical)
+        right.setChildrenCollapsible(False)
+        right.addWidget(self.accuracy_plot)
+        right.addWidget(self.latent_plot)
+        pl.addWidget(right, 2)
 
         self.table = QTableWidget(0, len(COLUMNS))
         # two-line headers keep the six tolerance columns narrow: "accuracy ≥" / "99 %", "loss ≤" / "1 pt"
@@ -336,6 +362,8 @@ class TrendPanel(QWidget):
                 _Cell("—" if p.accuracy_at_zero is None else fmt_percent(p.accuracy_at_zero, 3), p.accuracy_at_zero),
                 *[_Cell(tolerance_text(x), None if x is None else x.sigma) for x in tol],
                 _Cell("—" if p.latent_rms is None else f"{p.latent_rms:.4g}", p.latent_rms),
+                _Cell("—" if p.kl is None else f"{p.kl:.4g}", p.kl),
+                _Cell("—" if p.active_dims is None else str(p.active_dims), p.active_dims),
                 _Cell(p.error or "", right=False),
             ]
             cells[0].setToolTip(p.path)
@@ -351,13 +379,24 @@ class TrendPanel(QWidget):
     def _draw_plots(self) -> None:
         p = PALETTE
         tol_item, acc_item = self.tolerance_plot.getPlotItem(), self.accuracy_plot.getPlotItem()
-        for item in (tol_item, acc_item):
+        lat_item = self.latent_plot.getPlotItem()
+        for item in (tol_item, acc_item, lat_item):
             item.clear()
             if item.legend is not None:
                 item.legend.clear()
         good = [pt for pt in sort_points(list(self.points)) if pt.error is None and pt.step is not None]
         if not good:
             return
+        steps = [pt.step for pt in good]
+        # a doubling schedule of checkpoints reads on a log step axis; a linear one on a linear axis
+        log_x = min(steps) > 0 and max(steps) >= 8 * min(steps)
+        for item in (tol_item, acc_item, lat_item):
+            item.setLogMode(x=log_x, y=item is lat_item)
+            item.setLabel("bottom", "training step (log scale)" if log_x else "training step", color=p.ink_soft,
+                          **{"font-size": "8pt"})
+            # on a log axis, ticks at the checkpoints' own steps (pyqtgraph's minor log ticks overprint)
+            item.getAxis("bottom").setTicks([[(float(np.log10(x)), f"{x:,}") for x in sorted(set(steps))], []]
+                                            if log_x else None)
         noise = self.settings_used.noise if self.settings_used is not None else ""
         tol_item.setLabel("left", sigma_unit(noise), color=p.ink_soft, **{"font-size": "8pt"})
         legend(tol_item, offset=(10, 10))
@@ -387,12 +426,29 @@ class TrendPanel(QWidget):
         if acc:
             acc_item.addItem(pg.PlotDataItem([a[0] for a in acc], [a[1] for a in acc], pen=pen(p.ink, 2), symbol="o",
                                              symbolSize=7, symbolBrush=p.ink, symbolPen=None))
-        steps = [pt.step for pt in good]
-        span = max(steps) - min(steps)
-        pad = span * 0.04 if span > 0 else 1.0
-        tol_item.setXRange(min(steps) - pad, max(steps) + pad, padding=0)  # the accuracy plot follows (x-linked)
+        legend(lat_item, offset=(10, 10))
+        for values, colour, symbol, label in (
+                ([pt.latent_rms for pt in good], p.accent, "o", "latent RMS"),
+                ([pt.kl for pt in good], p.ink, "s", "KL to N(0, I), nats per chunk"),
+                ([None if pt.active_dims is None else float(pt.active_dims) for pt in good], p.ink_soft, "t",
+                 "active dims")):
+            rows = [(x, v) for x, v in zip(steps, values) if v is not None and v > 0]
+            if rows:
+                lat_item.addItem(pg.PlotDataItem([r[0] for r in rows], [r[1] for r in rows], pen=pen(colour, 1.6),
+                                                 symbol=symbol, symbolSize=6, symbolBrush=colour, symbolPen=None,
+                                                 name=label))
+        if log_x:
+            low, high = np.log10(min(steps)), np.log10(max(steps))
+            pad = (high - low) * 0.05
+        else:
+            low, high = min(steps), max(steps)
+            pad = (high - low) * 0.04 if high > low else 1.0
+        tol_item.setXRange(low - pad, high + pad, padding=0)  # the other plots follow (x-linked)
         tol_item.setYRange(0, highest * 1.4 if highest > 0 else 1.0, padding=0)  # σ starts at 0; room for the legend
         acc_item.enableAutoRange(y=True)
+        shown = [v for pt in good for v in (pt.latent_rms, pt.kl, pt.active_dims) if v is not None and v > 0]
+        if shown:  # log axis: room above the highest series for the legend
+            lat_item.setYRange(np.log10(min(shown)) - 0.3, np.log10(max(shown)) + 2.3, padding=0)
 
     # ---- for export and reports ----------------------------------------------------------
 
@@ -417,4 +473,4 @@ class TrendPanel(QWidget):
         return text + f"; chunkscope {core.__version__}"
 
     def plots(self) -> list[pg.PlotWidget]:
-        return [self.tolerance_plot, self.accuracy_plot]
+        return [self.tolerance_plot, self.accuracy_plot, self.latent_plot]

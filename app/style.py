@@ -220,6 +220,15 @@ def fmt_sigma(value: float | None) -> str:
     return f"{value:.3g}"
 
 
+def fmt_tick(value: float | None) -> str:
+    """A scale tick: two significant digits (whole numbers from 10 up), so neighbouring ticks read alike."""
+    if value is None or not np.isfinite(value):
+        return "—"
+    if abs(value) >= 10:
+        return f"{value:.0f}"
+    return f"{value:.2g}"
+
+
 def fmt_percent(value: float, digits: int = 2) -> str:
     if value is None or not np.isfinite(value):
         return "—"

@@ -360,7 +360,8 @@ def cmd_trend(args: argparse.Namespace) -> int:
     levels = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
     print(f"{'':<48}{'accuracy ≥':<34}loss ≤")
     print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[:3])
-          + "  " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[3:]))
+          + "  " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[3:])
+          + f" {'lat. RMS':>9} {'KL nats':>9} {'active':>7}")
     for point in trend(args.folder, text, settings, text_source=source, adapter=args.adapter, where=where):
         points.append(point)
         if point.error:
@@ -368,8 +369,11 @@ def cmd_trend(args: argparse.Namespace) -> int:
             continue
         tols = [point.tolerance(level, kind) for kind, level in levels]
         cells = [f"{'—' if t is None else t.label():>10}" for t in tols]
+        latent = (f" {'—' if point.latent_rms is None else f'{point.latent_rms:.4g}':>9}"
+                  f" {'—' if point.kl is None else f'{point.kl:.4g}':>9}"
+                  f" {'—' if point.active_dims is None else point.active_dims:>7}")
         print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} {point.accuracy_at_zero * 100:8.3f}% "
-              + " ".join(cells[:3]) + "  " + " ".join(cells[3:]), flush=True)
+              + " ".join(cells[:3]) + "  " + " ".join(cells[3:]) + latent, flush=True)
     if out is not None:
         written = write_trend(out, points, force=args.force)
         print(f"wrote {' and '.join(str(p) for p in written)}", file=sys.stderr)
@@ -629,7 +633,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_cluster_arguments(p)
     p.set_defaults(func=cmd_compare)
 
-    p = sub.add_parser("trend", help="tolerance through a training run (a folder of checkpoints)", description="Sweep every checkpoint in a folder and report accuracy at sigma 0 and the 99.9/99/90 % tolerances against training step (from each card, else from the file name).")
+    p = sub.add_parser("trend", help="tolerance through a training run (a folder of checkpoints)", description="Sweep every checkpoint in a folder and report accuracy at sigma 0, the 99.9/99/90 % tolerances and loss tolerances, latent RMS, KL and active dimensions against training step (from each card, else from the file name).")
     p.add_argument("folder")
     p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     add_sweep_arguments(p)

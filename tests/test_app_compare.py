@@ -74,7 +74,8 @@ def test_compare_panel_runs_and_its_table_holds_the_comparisons_numbers(compare_
     assert table.columnCount() == 2
     for j, row in enumerate(comparison.tolerances):
         assert row.name in table.horizontalHeaderItem(j).text()
-        assert table.item(0, j).text() == row.sha256[:10]
+        assert table.item(0, j).text() == row.sha256[:8]  # the 8-digit short form the checkpoint list shows
+        assert row.sha256 in table.item(0, j).toolTip()  # the full hash one hover away
         assert table.item(1, j).text() == f"{row.latent_rms:.4g}"
         assert table.item(2, j).text().startswith(f"{row.accuracy_at_zero * 100:.3f}")
         groups = {("isotropic", "absolute"): row.absolute, ("isotropic", "loss"): row.absolute_loss,

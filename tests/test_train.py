@@ -118,3 +118,24 @@ def test_cli_arguments_parse():
     args = parser.parse_args(["--recipe", "plain", "--out", "x.safetensors", "--steps", "5", "--seed", "3"])
     assert args.recipe == "plain" and args.steps == 5 and args.seed == 3
     assert set(RECIPES) >= {"plain", "tolerant"}
+
+
+def test_a_run_keeps_checkpoints_on_a_doubling_schedule_with_step_and_loss(tmp_path, shared):
+    corpus, tokenizer = shared
+    recipe = replace(TINY, steps=30, first_checkpoint=5)
+    # the schedule: 5, 10, 20 (doublings below the end), then the final step (common practice for run logs)
+    from core.training.train import checkpoint_steps
+
+    assert checkpoint_steps(recipe) == [5, 10, 20, 30]
+    assert checkpoint_steps(TINY) == []
+    final = train(recipe, tmp_path / "tiny.safetensors", log=lambda _: None, corpus=corpus, tokenizer=tokenizer,
+                  measure_card=False)
+    kept = sorted((tmp_path / "tiny-run").glob("*.safetensors"))
+    assert [p.name for p in kept] == ["step_00005.safetensors", "step_00010.safetensors", "step_00020.safetensors",
+                                      "step_00030.safetensors"]
+    cards = [load_codec(p).card for p in kept]
+    assert [c["step"] for c in cards] == [5, 10, 20, 30]
+    assert all(math.isfinite(c["training_loss"]) and c["training_loss"] > 0 for c in cards)
+    # the last kept checkpoint is the final model's weights
+    last, ref = load_codec(kept[-1]).codec.model.state_dict(), final.model.state_dict()
+    assert all(torch.equal(last[k], ref[k]) for k in ref)

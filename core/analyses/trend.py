@@ -50,6 +50,8 @@ class TrendPoint:
     error: str | None = None
     result: SweepResult | None = None
     loss_tolerances: list[Tolerance] = field(default_factory=list)  # kind "loss"
+    kl: float | None = None  # mean over chunks of KL(q(z|x) || N(0, I)), nats; variational codecs only
+    active_dims: int | None = None  # dimensions whose posterior mean varies over chunks by more than ACTIVE_THRESHOLD
 
     def tolerance(self, level: float, kind: str = ABSOLUTE) -> Tolerance | None:
         for t in self.loss_tolerances if kind == LOSS else self.tolerances:
@@ -63,6 +65,7 @@ class TrendPoint:
             "sha256": self.sha256, "accuracy_at_zero": self.accuracy_at_zero, "latent_rms": self.latent_rms,
             "tolerances": [t.to_dict() for t in self.tolerances],
             "loss_tolerances": [t.to_dict() for t in self.loss_tolerances], "error": self.error,
+            "kl": self.kl, "active_dims": self.active_dims,
         }
 
     @classmethod
@@ -75,6 +78,19 @@ class TrendPoint:
         loss = data.pop("loss_tolerances", [])
         return cls(**data, tolerances=[Tolerance.from_dict(t) for t in tolerances],
                    loss_tolerances=[Tolerance.from_dict(t, LOSS) for t in loss])
+
+
+def latent_stats(codec, chunks) -> tuple[float | None, int]:
+    """KL to N(0, I) (summed over dimensions, mean over chunks; None without a posterior std) and the
+    number of active dimensions (variance of the posterior mean over chunks > ACTIVE_THRESHOLD)."""
+    from core.engine.health import ACTIVE_THRESHOLD, kl_to_standard_normal
+    from core.engine.noise import encode_chunks
+
+    encoded = encode_chunks(codec, chunks)
+    mean = encoded.mean
+    variance = mean.var(0, unbiased=False) if mean.shape[0] > 1 else mean.new_zeros(mean.shape[1])
+    kl = None if encoded.std is None else float(kl_to_standard_normal(mean, encoded.std).sum(1).mean())
+    return kl, int((variance > ACTIVE_THRESHOLD).sum())
 
 
 def checkpoints_in(folder: str | Path, adapter: str | None = None) -> list[Path]:
@@ -126,7 +142,7 @@ def trend(
         except ChunkscopeError as exc:
             yield TrendPoint(str(path), codec.name, step, source, sha256=codec.sha256, error=str(exc))
             continue
-        yield _point_of(path, codec, step, source, result)
+        yield _point_of(path, codec, step, source, result, *latent_stats(codec, chunks))
 
 
 def _opened_point(path: Path, adapter: str | None):
@@ -143,12 +159,13 @@ def _opened_point(path: Path, adapter: str | None):
     return codec, step, source
 
 
-def _point_of(path: Path, codec, step, source: str, result: SweepResult) -> TrendPoint:
+def _point_of(path: Path, codec, step, source: str, result: SweepResult, kl: float | None = None,
+              active: int | None = None) -> TrendPoint:
     acc0 = result.curves[0].token_accuracy if result.sigmas[0] == 0 else None
     return TrendPoint(
         str(path), codec.name, step, source, sha256=codec.sha256, accuracy_at_zero=acc0,
         tolerances=list(result.tolerances), loss_tolerances=list(result.loss_tolerances),
-        latent_rms=result.latent_rms, result=result,
+        latent_rms=result.latent_rms, result=result, kl=kl, active_dims=active,
     )
 
 
@@ -156,7 +173,7 @@ def _trend_on_cluster(paths, text, settings, text_source, should_stop, progress,
     from core.engine.cluster import SweepJob, sweeps_as_completed
     from core.codecs.open import uses_adapter
 
-    jobs, about = [], []
+    jobs, about, stats = [], [], []
     for path in paths:
         if should_stop is not None and should_stop():
             raise SweepCancelled()
@@ -173,9 +190,10 @@ def _trend_on_cluster(paths, text, settings, text_source, should_stop, progress,
             continue
         jobs.append(SweepJob(codec, chunks, checked, text_source, adapter=adapter if adapter and uses_adapter(path) else None))
         about.append((path, codec, step, source))
+        stats.append(latent_stats(codec, chunks))  # on the client: one encoding pass, as the plan's
     for i, result in sweeps_as_completed(jobs, where, progress, should_stop):
         jobs[i] = None  # the client keeps the point, not the codec
-        yield _point_of(*about[i], result)
+        yield _point_of(*about[i], result, *stats[i])
 
 
 def sort_points(points: list[TrendPoint]) -> list[TrendPoint]:
@@ -192,7 +210,7 @@ def _column(kind: str, level: float) -> str:
 TREND_CSV_COLUMNS = (
     ["name", "step", "step_source", "status", "accuracy_at_sigma0"]
     + [name for kind, level in TREND_LEVELS for name in (_column(kind, level), _column(kind, level) + "_status")]
-    + ["latent_rms", "sha256", "error"]
+    + ["latent_rms", "kl", "active_dims", "sha256", "error"]
 )
 NOT_MEASURED = "not measured"
 
@@ -216,7 +234,8 @@ def trend_csv(points: list[TrendPoint]) -> str:
             [p.name, "" if p.step is None else p.step, p.step_source, "error" if p.error is not None else "ok",
              "" if p.accuracy_at_zero is None else f"{p.accuracy_at_zero:.6f}"]
             + cells
-            + ["" if p.latent_rms is None else f"{p.latent_rms:.6g}", p.sha256, p.error or ""]
+            + ["" if p.latent_rms is None else f"{p.latent_rms:.6g}", "" if p.kl is None else f"{p.kl:.6g}",
+               "" if p.active_dims is None else p.active_dims, p.sha256, p.error or ""]
         )
     return out.getvalue()
 
@@ -258,7 +277,7 @@ def check_trend_output(folder: str | Path, force: bool = False) -> None:
 
 
 _POINT_FIELDS = {"path", "name", "step", "step_source", "sha256", "accuracy_at_zero", "latent_rms", "tolerances",
-                 "loss_tolerances", "error"}
+                 "loss_tolerances", "error", "kl", "active_dims"}
 
 
 def _tolerances_from(raw: object, name: str, kind: str) -> list[Tolerance]:
@@ -304,7 +323,9 @@ def _point_from_dict(row: object) -> TrendPoint:
     step = row.get("step")
     if step is not None and (isinstance(step, bool) or not isinstance(step, int)):
         raise Damaged(f'the "step" of {name!r} is {json_kind(step)}, not a whole number')
-    for key in ("accuracy_at_zero", "latent_rms"):
+    if row.get("active_dims") is not None and (isinstance(row["active_dims"], bool) or not isinstance(row["active_dims"], int)):
+        raise Damaged(f'the "active_dims" of {name!r} is {json_kind(row["active_dims"])}, not a whole number')
+    for key in ("accuracy_at_zero", "latent_rms", "kl"):
         value = row.get(key)
         if value is not None and (isinstance(value, bool) or not isinstance(value, (int, float))):
             raise Damaged(f'the "{key}" of {name!r} is {json_kind(value)}, not a number')
@@ -314,6 +335,7 @@ def _point_from_dict(row: object) -> TrendPoint:
         path=row.get("path") or "", name=name, step=step, step_source=row.get("step_source") or "none",
         sha256=row.get("sha256") or "", accuracy_at_zero=row.get("accuracy_at_zero"), tolerances=tolerances,
         latent_rms=row.get("latent_rms"), error=row.get("error"), loss_tolerances=loss_tolerances,
+        kl=row.get("kl"), active_dims=row.get("active_dims"),
     )
 
 

@@ -40,6 +40,22 @@ def training_line(card: Mapping[str, Any]) -> str:
     return ", ".join(parts)
 
 
+def _training_rows(card: Mapping[str, Any]) -> list[Row]:
+    """How it was trained in one line, then the step it was saved at when that is not the recipe's end."""
+    rows: list[Row] = []
+    trained = training_line(card)
+    if trained:
+        rows.append(("trained", trained))
+    step = card.get("step", card.get("steps_done"))
+    recipe = card.get("recipe") if isinstance(card.get("recipe"), Mapping) else {}
+    if isinstance(step, int) and not isinstance(step, bool) and step != recipe.get("steps"):
+        of = f" of {recipe['steps']:,}" if isinstance(recipe.get("steps"), int) else ""
+        rows.append(("saved at step", f"{step:,}{of}"))
+    if isinstance(card.get("training_loss"), (int, float)):
+        rows.append(("training loss", f"{card['training_loss']:.4g}"))
+    return rows
+
+
 def measured_rows(card: Mapping[str, Any]) -> list[Row]:
     """What the card says was measured: σ = 0 accuracy and the 99 % tolerances, when present."""
     measured = card.get("measured")
@@ -71,10 +87,12 @@ def codec_rows(codec) -> list[Row]:
     rows: list[Row] = [("architecture", f"{name}, {kind} autoencoder" if name else f"{kind} autoencoder")]
     rows.append(("sizes", f"chunk K {codec.chunk_size} · latent D {codec.latent_dim} · vocabulary {codec.vocab_size:,} · pad id {codec.pad_id}"))
     for key, value in arch.items():
+        if key == "embed / width / depth" and isinstance(value, str) and value.count(" / ") == 2:
+            embed, width, depth = value.split(" / ")  # a short key leaves the value room in a narrow pane
+            rows.append(("layers", f"embed {embed} · width {width} · depth {depth}"))
+            continue
         rows.append((str(key), f"{value:,}" if isinstance(value, int) and not isinstance(value, bool) else str(value)))
-    trained = training_line(codec.card)
-    if trained:
-        rows.append(("trained", trained))
+    rows += _training_rows(codec.card)
     rows += measured_rows(codec.card)
     rows.append(("opened as", codec.source.opened_as + (f" ({os.path.basename(codec.source.adapter)})" if codec.source.adapter else "")))
     if codec.path:
@@ -115,12 +133,10 @@ def header_rows(info) -> list[Row]:
     rows: list[Row] = [
         ("architecture", f"{c.arch}, {'variational' if c.variational else 'plain'} autoencoder"),
         ("sizes", f"chunk K {c.chunk_size} · latent D {c.latent_dim} · vocabulary {c.vocab_size:,} · pad id {c.pad_id}"),
-        ("embed / width / depth", f"{c.embed_dim} / {c.width} / {c.depth}"),
+        ("layers", f"embed {c.embed_dim} · width {c.width} · depth {c.depth}"),
         ("parameters", "loading weights…"),
     ]
-    trained = training_line(info.card)
-    if trained:
-        rows.append(("trained", trained))
+    rows += _training_rows(info.card)
     rows += measured_rows(info.card)
     rows += [("opened as", "built-in"), ("file", info.path.name), ("sha256", "loading weights…")]
     return rows

@@ -36,6 +36,8 @@ class Recipe:
     threads: int = 1
     log_every: int = 200
     save_dtype: str = "float16"
+    # keep checkpoints at this step and its doublings up to `steps` in a run folder (0: none)
+    first_checkpoint: int = 0
     why: str = ""
 
     def model_config(self, pad_id: int = 0) -> ChunkMLPConfig:

@@ -135,6 +135,7 @@ def training_loss(
     logits = model.decode(z)
     ce = nn.functional.cross_entropy(logits.reshape(-1, logits.shape[-1]), ids.reshape(-1))
     loss = ce + kl_term / k
+    stats["loss"] = float(loss.detach())
     stats["ce"] = float(ce.detach())
     stats["acc"] = float((logits.argmax(-1) == ids).float().mean())
     return loss, stats
@@ -266,6 +267,9 @@ def train(
     step = 0
     stopped_by = "steps"
     running: dict[str, float] = {}
+    since_checkpoint: list[float] = []
+    keep_steps = checkpoint_steps(recipe)
+    run_dir = run_folder(recipe, out_path)
     try:
         while step < recipe.steps:
             if time.perf_counter() - started > recipe.minutes * 60:
@@ -283,6 +287,11 @@ def train(
             step += 1
             for key, value in stats.items():
                 running[key] = running.get(key, 0.0) + value
+            since_checkpoint.append(stats["loss"])
+            if step in keep_steps and math.isfinite(since_checkpoint[-1]):
+                _save_run_checkpoint(model, tokenizer, recipe, corpus, run_dir, step, since_checkpoint,
+                                     time.perf_counter() - started, log)
+                since_checkpoint = []
             if step % recipe.log_every == 0 or step == recipe.steps:
                 n = recipe.log_every if step % recipe.log_every == 0 else step % recipe.log_every
                 avg = {key: value / n for key, value in running.items()}
@@ -338,6 +347,47 @@ def train(
     save_codec(codec, out_path, dtype=recipe.save_dtype)
     log(f"[{recipe.name}] saved {out_path} ({Path(out_path).stat().st_size / 1e6:.2f} MB) after {step} steps, {wall:.0f} s")
     return codec
+
+
+def checkpoint_steps(recipe: Recipe) -> list[int]:
+    """The steps a run keeps: first_checkpoint and its doublings below `steps`, then `steps` itself."""
+    if recipe.first_checkpoint <= 0:
+        return []
+    steps, step = [], recipe.first_checkpoint
+    while step < recipe.steps:
+        steps.append(step)
+        step *= 2
+    return steps + [recipe.steps]
+
+
+def run_folder(recipe: Recipe, out_path: str | Path) -> Path:
+    return Path(out_path).parent / f"{recipe.name}-run"
+
+
+def _save_run_checkpoint(model, tokenizer, recipe: Recipe, corpus: Corpus, run_dir: Path, step: int,
+                         losses: list[float], wall: float, log: Log) -> None:
+    """A copy of the weights at `step`, stored as the recipe's dtype, with its step and training loss."""
+    snapshot = copy.deepcopy(model).eval()
+    codec = Codec(model=snapshot, tokenizer=tokenizer)
+    codec.card = {
+        "name": f"{recipe.name} step {step}",
+        "why": f"checkpoint of the {recipe.name} recipe at step {step} of {recipe.steps}",
+        "run": recipe.name,
+        "step": step,
+        "training_loss": float(np.mean(losses)),
+        "training_loss_rule": "mean training objective (cross-entropy + KL term / K) over the steps since the previous kept checkpoint",
+        "recipe": recipe.to_dict(),
+        "corpus": corpus.info.to_dict(),
+        "tokenizer": {"kind": "byte-level BPE trained on the training split", "vocab_size": tokenizer.get_vocab_size(),
+                      "sha256": tokenizer_sha256(tokenizer)},
+        "versions": library_versions(),
+        "train_wall_seconds": round(wall, 1),
+        "steps_done": step,
+    }
+    run_dir.mkdir(parents=True, exist_ok=True)
+    path = run_dir / f"step_{step:05d}.safetensors"
+    save_codec(codec, path, dtype=recipe.save_dtype)
+    log(f"[{recipe.name}] kept {path} (training loss {codec.card['training_loss']:.4f})")
 
 
 def _override(recipe: Recipe, args: argparse.Namespace) -> Recipe:
