@@ -223,7 +223,7 @@ def test_only_checkpoints_that_open_enter_recent_files(qtbot, window, tmp_path):
         _drop(window, broken)
         qtbot.waitUntil(lambda: window.message.text().startswith(broken.name), timeout=WAIT)
     window.open_checkpoint(str(tmp_path / "missing.safetensors"))
-    qtbot.waitUntil(lambda: window.message.text().startswith("missing.safetensors"), timeout=WAIT)
+    qtbot.waitUntil(lambda: window.message.text().startswith(str(tmp_path / "missing.safetensors")), timeout=WAIT)
     qtbot.wait(100)
     assert window.recent_files() == before
 
