@@ -125,10 +125,7 @@ def trend(
     if where is not None and not where.here:
         yield from _trend_on_cluster(paths, text, settings, text_source, should_stop, progress, adapter, where)
         return
-    for index, path in enumerate(paths):
-        if should_stop is not None and should_stop():
-            raise SweepCancelled()
-        opened = _opened_point(path, adapter)
+    for index, path, opened in _opened_points(paths, adapter, should_stop):
         if isinstance(opened, TrendPoint):
             yield opened
             continue
@@ -143,6 +140,14 @@ def trend(
             yield TrendPoint(str(path), codec.name, step, source, sha256=codec.sha256, error=str(exc))
             continue
         yield _point_of(path, codec, step, source, result, *latent_stats(codec, chunks))
+
+
+def _opened_points(paths, adapter: str | None, should_stop):
+    """(index, path, what _opened_point gives) per checkpoint, stopping when asked."""
+    for index, path in enumerate(paths):
+        if should_stop is not None and should_stop():
+            raise SweepCancelled()
+        yield index, path, _opened_point(path, adapter)
 
 
 def _opened_point(path: Path, adapter: str | None):
@@ -174,10 +179,7 @@ def _trend_on_cluster(paths, text, settings, text_source, should_stop, progress,
     from core.codecs.open import uses_adapter
 
     jobs, about, stats = [], [], []
-    for path in paths:
-        if should_stop is not None and should_stop():
-            raise SweepCancelled()
-        opened = _opened_point(path, adapter)
+    for _, path, opened in _opened_points(paths, adapter, should_stop):
         if isinstance(opened, TrendPoint):
             yield opened
             continue
