@@ -359,7 +359,7 @@ def test_parse_sigmas():
 CORE = Path(__file__).resolve().parent.parent / "core"
 QT_PACKAGES = ("PySide6", "shiboken6", "pyqtgraph", "superqt")
 # DEVELOPERS.md "Start-up": core modules defer torch; only the model itself and the training recipe import it
-TORCH_AT_IMPORT = {"core.codecs.model", "core.training.train"}
+TORCH_AT_IMPORT = {"core.codecs.model", "core.training.train", "core.training.generator"}
 
 
 def core_modules() -> list[str]:
