@@ -605,3 +605,62 @@ def report_section(result: WorstCaseResult, fragile_rows: int = 15):
     rows.append("</table>")
     after = "<h3>Most fragile chunks</h3>" + "".join(rows)
     return ReportSection(f"worst-case-{slug}", f"Worst case: {name}", html=html, figures=figures, html_after=after)
+
+
+# ---- against a generator's errors -----------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class GeneratorComparison:
+    error_norm: np.ndarray  # [N] ‖predicted − encoder mean‖; for S > 1 samples the median over samples per chunk
+    below: int  # verified chunks whose worst-case radius is below their error norm
+    verified: int
+    interval: tuple[float, float]  # Wilson 95 % interval of below / verified
+    samples: int
+
+    @property
+    def share(self) -> float | None:
+        return self.below / self.verified if self.verified else None
+
+    def summary(self) -> dict[str, Any]:
+        return {"generator_below": self.below, "generator_compared": self.verified, "generator_below_rate": self.share,
+                "generator_below_interval": list(self.interval) if self.verified else None,
+                "generator_error_norm": "median over samples per chunk" if self.samples > 1 else "one sample per chunk",
+                "generator_error_norm_median": float(np.median(self.error_norm)) if len(self.error_norm) else None}
+
+    def line(self) -> str:
+        if not self.verified:
+            return "No verified chunk to hold against the generator's errors."
+        lo, hi = self.interval
+        per = " (median over its samples)" if self.samples > 1 else ""
+        return (f"The worst-case radius is below the generator's error norm{per} for {self.below:,} of "
+                f"{self.verified:,} verified chunks ({100 * self.share:.1f} %, 95 % interval "
+                f"{100 * lo:.1f}–{100 * hi:.1f} %).")
+
+
+def against_generator(result: WorstCaseResult, predictions, encoder_mean: np.ndarray) -> GeneratorComparison:
+    """Per chunk the generator's error norm ‖predicted − encoder mean‖ (median over samples when S > 1), and the
+    share of verified chunks whose worst-case radius is below it (Wilson 95 % interval).
+
+    `encoder_mean` [N, D] is the encoder mean of the result's chunks. Raises PredictionsError in one sentence when
+    the file is for another codec or other chunks."""
+    from core.analyses.prediction_file import PredictionsError
+    from core.engine.metrics import wilson_interval
+
+    label = predictions.path
+    sha = result.provenance.get("codec", {}).get("sha256", "")
+    if sha and predictions.codec_sha256 != sha:
+        raise PredictionsError(f"{label} was made for the codec with sha256 {predictions.codec_sha256[:12]}…, but the "
+                               f"worst-case result is for sha256 {sha[:12]}…; use predictions for the same codec.")
+    n, k = result.num_chunks, result.chunks.chunk_size
+    ids = np.asarray(result.chunks.token_ids)
+    flat = predictions.token_ids.reshape(-1)[: len(ids)]
+    if predictions.num_chunks != n or predictions.chunk_size != k or not np.array_equal(flat, ids):
+        raise PredictionsError(f"{label} holds {predictions.num_chunks:,} chunks of K = {predictions.chunk_size} whose "
+                               f"token ids are not the {n:,} chunks of the worst-case text; use predictions for the same text.")
+    mean = np.asarray(encoder_mean, dtype=np.float64)
+    norms = np.linalg.norm(predictions.latents.astype(np.float64) - mean[:, None, :], axis=2)  # [N, S]
+    error = np.median(norms, axis=1)
+    ok = result.verified
+    below = int((result.radius[ok] < error[ok]).sum())
+    return GeneratorComparison(error, below, int(ok.sum()), wilson_interval(below, int(ok.sum())), predictions.samples)

@@ -1,0 +1,66 @@
+"""The worst case against a generator's errors (issue 13, "Views"): per chunk the error norm
+‖predicted − encoder mean‖ and the share of verified chunks whose worst-case radius is below it."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from statsmodels.stats.proportion import proportion_confint
+
+from core.analyses.prediction_file import PredictionsError, read_predictions, write_predictions
+from core.analyses.worstcase import against_generator, worst_case
+from tests.test_core_adapter import one_sentence
+from tests.test_core_worstcase import closed_form, linear_setup
+
+
+def _predictions(tmp_path, mean, norms_per_sample, seed=0, sha="", ids=None):
+    """mean + a random direction scaled to the given norm per chunk and sample: the error norms are known."""
+    n, dim = mean.shape
+    rng = np.random.default_rng(seed)
+    direction = rng.standard_normal((n, norms_per_sample.shape[1], dim))
+    direction /= np.linalg.norm(direction, axis=2, keepdims=True)
+    latents = mean[:, None, :] + norms_per_sample[:, :, None] * direction
+    path = tmp_path / "pred.safetensors"
+    write_predictions(path, latents, np.ones((n, 4), dtype=np.int64) if ids is None else ids, sha, "test")
+    return read_predictions(path)
+
+
+@pytest.mark.parametrize("samples", [1, 3])
+def test_share_is_the_hand_count(tokenizer, tmp_path, samples):
+    codec, chunks, encoded = linear_setup(tokenizer, n=120, seed=2)
+    result = worst_case(codec, chunks, encoded=encoded)
+    mean = encoded.mean.numpy().astype(np.float64)
+    # the closed form of the linear case (DeepFool, Moosavi-Dezfooli et al. 2016; see test_core_worstcase)
+    radius = closed_form(codec, encoded.mean, chunks.mask())
+    factor = np.where(np.arange(len(radius)) % 3 == 0, 2.0, 0.5)  # far from equality: the search is within 1 %
+    norm = factor * radius
+    per_sample = np.stack([norm * 0.1, norm, norm * 10], 1)[:, :samples] if samples == 3 else norm[:, None]
+    preds = _predictions(tmp_path, mean.astype(np.float32), per_sample)
+    got = against_generator(result, preds, mean)
+    want = int((factor > 1).sum())  # by hand: radius < error norm exactly where the norm is twice the radius
+    assert result.failed == 0 and got.below == want and got.verified == len(radius)
+    # the median over samples is the middle one; the file stores float32 latents of size ~2 (rounding ~1e-6)
+    np.testing.assert_allclose(got.error_norm, norm, rtol=1e-4, atol=1e-6)
+    # Wilson score interval against statsmodels
+    lo, hi = proportion_confint(want, len(radius), alpha=0.05, method="wilson")
+    np.testing.assert_allclose(got.interval, (lo, hi), rtol=1e-3)
+    assert got.summary()["generator_below_rate"] == pytest.approx(want / len(radius))
+
+
+def test_other_codec_or_other_chunks_are_one_sentence(tokenizer, tmp_path):
+    codec, chunks, encoded = linear_setup(tokenizer, n=30)
+    result = worst_case(codec, chunks, encoded=encoded)
+    mean = encoded.mean.numpy()
+    result.provenance["codec"]["sha256"] = "a" * 64
+    preds = _predictions(tmp_path, mean, np.ones((30, 1)), sha="b" * 64)
+    with pytest.raises(PredictionsError) as err:
+        against_generator(result, preds, mean)
+    one_sentence(str(err.value))
+    assert "sha256" in str(err.value)
+    ids = np.ones((30, 4), dtype=np.int64)
+    ids[5, 2] = 7
+    preds = _predictions(tmp_path, mean, np.ones((30, 1)), sha="a" * 64, ids=ids)
+    with pytest.raises(PredictionsError) as err:
+        against_generator(result, preds, mean)
+    one_sentence(str(err.value))
+    assert "token ids" in str(err.value)
