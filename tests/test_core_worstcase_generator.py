@@ -64,3 +64,44 @@ def test_other_codec_or_other_chunks_are_one_sentence(tokenizer, tmp_path):
         against_generator(result, preds, mean)
     one_sentence(str(err.value))
     assert "token ids" in str(err.value)
+
+
+def test_the_worstcase_command_with_predictions(tmp_path, capsys):
+    import csv
+    import io
+    import json
+
+    from core.cli import main
+    from core.cli import open_checkpoints
+    from core.engine.noise import encode_chunks
+    from core.engine.text import chunk_text, demo_text
+    from tests.test_core_worstcase import SAMPLES
+
+    checkpoint = SAMPLES / "tolerant.safetensors"
+    if not checkpoint.exists():
+        pytest.skip("the sample checkpoints are not there")
+    text = tmp_path / "notes.txt"
+    text.write_text(demo_text()[2000:2400], encoding="utf-8")
+    (codec,) = open_checkpoints([str(checkpoint)])
+    chunks = chunk_text(text.read_text(encoding="utf-8"), codec, str(text))
+    mean = encode_chunks(codec, chunks).mean.numpy()
+    n, k = mean.shape[0], codec.chunk_size
+    ids = np.full(n * k, codec.pad_id, dtype=np.int64)
+    ids[: chunks.num_tokens] = chunks.token_ids
+    norms = np.linspace(0.01, 3.0, n)[:, None]  # a spread of known error norms, one sample per chunk
+    _predictions(tmp_path, mean, norms, sha=codec.sha256, ids=ids.reshape(n, k))
+    out = tmp_path / "wc"
+    assert main(["worstcase", str(checkpoint), "--text", str(text), "--out", str(out), "--quiet",
+                 "--predictions", str(tmp_path / "pred.safetensors")]) == 0
+    printed = capsys.readouterr().out
+    rows = list(csv.DictReader(io.StringIO((out / "worst_case.csv").read_text(encoding="utf-8"))))
+    s = json.loads((out / "worst_case.json").read_text(encoding="utf-8"))["summary"]
+    error = np.array([float(r["generator_error_norm"]) for r in rows])
+    np.testing.assert_allclose(error, norms[:, 0], rtol=1e-3, atol=1e-5)  # float32 latents
+    radius = np.array([float(r["radius"]) for r in rows])
+    ok = ~np.isnan(radius)
+    want = int((radius[ok] < error[ok]).sum())  # by hand from the CSV's own columns
+    assert s["generator_below"] == want and s["generator_compared"] == int(ok.sum())
+    lo, hi = proportion_confint(want, int(ok.sum()), alpha=0.05, method="wilson")  # statsmodels
+    np.testing.assert_allclose(s["generator_below_interval"], (lo, hi), rtol=1e-3)
+    assert f"for {want:,} of {int(ok.sum()):,} verified chunks" in printed

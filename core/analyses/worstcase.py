@@ -138,6 +138,7 @@ class WorstCaseResult:
     latent_rms: float
     elapsed_s: float
     token_text: dict[int, str] = field(default_factory=dict)
+    generator: "GeneratorComparison | None" = None  # set by with_generator when predictions are held against it
 
     @property
     def num_chunks(self) -> int:
@@ -190,6 +191,7 @@ class WorstCaseResult:
             "random_calls_per_chunk": self.random_calls / self.num_chunks if self.num_chunks else 0.0,
             "latent_rms": self.latent_rms,
             "elapsed_s": self.elapsed_s,
+            **(self.generator.summary() if self.generator is not None else {}),
         }
 
     def fragile(self, count: int = 20) -> list[int]:
@@ -209,7 +211,8 @@ class WorstCaseResult:
     def csv_text(self) -> str:
         out = io.StringIO()
         writer = csv.writer(out, lineterminator="\n")
-        writer.writerow(CSV_COLUMNS)
+        gen = self.generator
+        writer.writerow(CSV_COLUMNS + (("generator_error_norm",) if gen is not None else ()))
 
         def num(x: float) -> str:
             return "nan" if np.isnan(x) else f"{x:.6g}"
@@ -221,6 +224,7 @@ class WorstCaseResult:
                 num(self.random_relative_radius[i]), num(self.random_sigma[i]), int(self.position[i]),
                 self.display(self.from_id[i]) if ok else "", self.display(self.to_id[i]) if ok else "",
                 int(self.from_id[i]), int(self.to_id[i]), int(ok), int(self.forward_calls[i]), int(self.backward_calls[i]),
+                *((num(gen.error_norm[i]),) if gen is not None else ()),
             ])
         return out.getvalue()
 
