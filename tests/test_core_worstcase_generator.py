@@ -8,7 +8,7 @@ import pytest
 from statsmodels.stats.proportion import proportion_confint
 
 from core.analyses.prediction_file import PredictionsError, read_predictions, write_predictions
-from core.analyses.worstcase import against_generator, worst_case
+from core.analyses.worstcase import against_generator, against_predictions_result, worst_case
 from tests.test_core_adapter import one_sentence
 from tests.test_core_worstcase import closed_form, linear_setup
 
@@ -105,3 +105,20 @@ def test_the_worstcase_command_with_predictions(tmp_path, capsys):
     lo, hi = proportion_confint(want, int(ok.sum()), alpha=0.05, method="wilson")  # statsmodels
     np.testing.assert_allclose(s["generator_below_interval"], (lo, hi), rtol=1e-3)
     assert f"for {want:,} of {int(ok.sum()):,} verified chunks" in printed
+
+
+def test_a_finished_predictions_analysis_gives_the_same_share(tokenizer, tmp_path):
+    """The workbench's path (error norms of a predictions analysis) equals the file path on the same chunks."""
+    from types import SimpleNamespace
+
+    codec, chunks, encoded = linear_setup(tokenizer, n=60, seed=4)
+    result = worst_case(codec, chunks, encoded=encoded)
+    mean = encoded.mean.numpy()
+    radius = closed_form(codec, encoded.mean, chunks.mask())
+    norms = np.stack([radius * 0.5, radius * 2, radius * 3], 1)  # median 2 × radius: every chunk below
+    preds = _predictions(tmp_path, mean, norms)
+    direct = against_generator(result, preds, mean.astype(np.float64))
+    analysis = SimpleNamespace(provenance={"codec": {"sha256": ""}, "predictions": {"path": preds.path}}, chunks=chunks,
+                               error_norm=np.linalg.norm(preds.latents - mean[:, None, :], axis=2))
+    via = against_predictions_result(result, analysis)
+    assert via.below == direct.below == 60 and via.interval == direct.interval

@@ -648,23 +648,42 @@ def against_generator(result: WorstCaseResult, predictions, encoder_mean: np.nda
 
     `encoder_mean` [N, D] is the encoder mean of the result's chunks. Raises PredictionsError in one sentence when
     the file is for another codec or other chunks."""
-    from core.analyses.prediction_file import PredictionsError
-    from core.engine.metrics import wilson_interval
+    norms = np.linalg.norm(predictions.latents.astype(np.float64) - np.asarray(encoder_mean, np.float64)[:, None, :], axis=2) \
+        if _same_chunks(result, predictions.path, predictions.codec_sha256, predictions.token_ids) else None
+    return _compare(result, norms)
 
-    label = predictions.path
+
+def against_predictions_result(result: WorstCaseResult, analysis) -> GeneratorComparison:
+    """The same from a finished predictions analysis (its error norms [N, S] of the same codec and chunks)."""
+    prov = analysis.provenance
+    ids = np.asarray(analysis.chunks.token_ids)
+    k = result.chunks.chunk_size
+    padded = np.full(-(-len(ids) // k) * k, -1, dtype=np.int64)
+    padded[: len(ids)] = ids
+    _same_chunks(result, prov["predictions"]["path"], prov["codec"]["sha256"], padded.reshape(-1, k))
+    return _compare(result, np.asarray(analysis.error_norm, dtype=np.float64))
+
+
+def _same_chunks(result: WorstCaseResult, label: str, codec_sha256: str, token_ids: np.ndarray) -> bool:
+    from core.analyses.prediction_file import PredictionsError
+
     sha = result.provenance.get("codec", {}).get("sha256", "")
-    if sha and predictions.codec_sha256 != sha:
-        raise PredictionsError(f"{label} was made for the codec with sha256 {predictions.codec_sha256[:12]}…, but the "
+    if sha and codec_sha256 != sha:
+        raise PredictionsError(f"{label} was made for the codec with sha256 {codec_sha256[:12]}…, but the "
                                f"worst-case result is for sha256 {sha[:12]}…; use predictions for the same codec.")
     n, k = result.num_chunks, result.chunks.chunk_size
     ids = np.asarray(result.chunks.token_ids)
-    flat = predictions.token_ids.reshape(-1)[: len(ids)]
-    if predictions.num_chunks != n or predictions.chunk_size != k or not np.array_equal(flat, ids):
-        raise PredictionsError(f"{label} holds {predictions.num_chunks:,} chunks of K = {predictions.chunk_size} whose "
+    flat = token_ids.reshape(-1)[: len(ids)]
+    if token_ids.shape[0] != n or token_ids.shape[1] != k or not np.array_equal(flat, ids):
+        raise PredictionsError(f"{label} holds {token_ids.shape[0]:,} chunks of K = {token_ids.shape[1]} whose "
                                f"token ids are not the {n:,} chunks of the worst-case text; use predictions for the same text.")
-    mean = np.asarray(encoder_mean, dtype=np.float64)
-    norms = np.linalg.norm(predictions.latents.astype(np.float64) - mean[:, None, :], axis=2)  # [N, S]
+    return True
+
+
+def _compare(result: WorstCaseResult, norms: np.ndarray) -> GeneratorComparison:
+    from core.engine.metrics import wilson_interval
+
     error = np.median(norms, axis=1)
     ok = result.verified
     below = int((result.radius[ok] < error[ok]).sum())
-    return GeneratorComparison(error, below, int(ok.sum()), wilson_interval(below, int(ok.sum())), predictions.samples)
+    return GeneratorComparison(error, below, int(ok.sum()), wilson_interval(below, int(ok.sum())), int(norms.shape[1]))
