@@ -52,6 +52,7 @@ class WorstCasePanel(QWidget):
         self.results: dict[tuple[str, str], WorstCaseResult] = {}
         self.result: WorstCaseResult | None = None
         self.relative = True
+        self.generator_source = lambda: None  # the window hands over its finished predictions analysis, if any
         self._build()
         workbench.current_changed.connect(self.refresh)
         workbench.entry_changed.connect(lambda path: self.refresh() if path == workbench.current else None)
@@ -84,8 +85,9 @@ class WorstCasePanel(QWidget):
         head.addWidget(self.cancel_button)
         outer.addLayout(head)
 
-        self.note = QLabel("The search follows gradients through the decoder; the random radius is the noise norm at which "
+        self.note_text = ("The search follows gradients through the decoder; the random radius is the noise norm at which "
                            "a data-scale sweep with the same seed first breaks the chunk.")
+        self.note = QLabel(self.note_text)
         self.note.setObjectName("faint")
         self.note.setWordWrap(True)
         outer.addWidget(self.note)
@@ -241,6 +243,23 @@ class WorstCasePanel(QWidget):
         self._draw(result)
         self.shown.emit()
 
+    def predictions_changed(self, *_args) -> None:
+        self.result = None  # redraw with (or without) the generator's share line
+        self.refresh()
+
+    def _generator_line(self, result: WorstCaseResult) -> str:
+        """The share of chunks whose worst-case radius is below the generator's error norm (numbers from core)."""
+        from core.analyses.worstcase import against_predictions_result
+        from core.errors import ChunkscopeError
+
+        analysis = self.generator_source()
+        if analysis is None or analysis.provenance["codec"]["sha256"] != result.provenance["codec"].get("sha256"):
+            return ""
+        try:
+            return " " + against_predictions_result(result, analysis).line()
+        except ChunkscopeError:
+            return " The loaded generator predictions are for another text, so they are not held against these radii."
+
     def _unit(self) -> str:
         return "relative (‖δ / r‖)" if self.relative else "absolute (‖δ‖)"
 
@@ -254,6 +273,7 @@ class WorstCasePanel(QWidget):
             + (f" ({s['failed']:,} failed)" if s["failed"] else "")
             + f" · median worst case {'—' if median is None else format(median, '.3g')} · below random for {rate}"
         )
+        self.note.setText(self.note_text + self._generator_line(result))
         edges, worst, random = radius_histogram(result, self.relative, bins=40)
         hist = self.hist.getPlotItem()
         hist.setLabel("bottom", f"radius, {self._unit()}")

@@ -144,6 +144,9 @@ class MainWindow(QMainWindow):
         self.panels = {"live": self.live, "sweep": self.sweep, "tokens": self.tokens, "latent": self.latent,
                        "compare": self.compare, "trend": self.trend, "worstcase": WorstCasePanel(self.workbench),
                        "predictions": self.predictions}
+        worst = self.panels["worstcase"]
+        worst.generator_source = lambda: self.predictions.result
+        self.predictions.finished.connect(worst.predictions_changed)
         for name in VIEWS:
             self.tabs.addTab(self.panels[name], VIEW_TITLES[name])
 

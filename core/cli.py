@@ -512,10 +512,25 @@ def cmd_worstcase(args: argparse.Namespace) -> int:
     refuse_without_gradients(codec)
     chunks = chunk_text(text, codec, source)
     progress = None if args.quiet else TerminalProgress(f"{codec.name[:16]:<16}")
-    result = worst_case(codec, chunks, settings, progress=progress, text_source=source)
+    predictions = encoded = None
+    if args.predictions:
+        from core.analyses.prediction_file import check_against, read_predictions
+        from core.engine.noise import encode_chunks
+
+        predictions = read_predictions(args.predictions)
+        check_against(predictions, codec)
+        encoded = encode_chunks(codec, chunks)
+    result = worst_case(codec, chunks, settings, progress=progress, text_source=source, encoded=encoded)
+    if predictions is not None:
+        from core.analyses.worstcase import against_generator
+
+        result.generator = against_generator(result, predictions, encoded.mean.numpy())
+        result.provenance["predictions"] = predictions.provenance()
     result.write(out, force=args.force)
     print(f"wrote {out}/ (worst_case.json, worst_case.csv)", file=sys.stderr)
     print_worst_case(result)
+    if result.generator is not None:
+        print(result.generator.line())
 
 
 def print_predictions(result, stream=None) -> None:
@@ -669,6 +684,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=DEFAULT_SEED, help=f"noise seed of the random radius (default {DEFAULT_SEED})")
     p.add_argument("--repeats", type=int, default=DEFAULT_REPEATS, help=f"noise draws per chunk for the random radius (default {DEFAULT_REPEATS})")
     p.add_argument("--sigmas", help="data-scale grid of the random radius (default: the sweep's)")
+    p.add_argument("--predictions", metavar="FILE", help="a generator predictions file for the same codec and text: adds "
+                   "each chunk's generator error norm and the share of chunks whose worst-case radius is below it")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.set_defaults(func=cmd_worstcase)

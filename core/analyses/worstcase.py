@@ -138,6 +138,7 @@ class WorstCaseResult:
     latent_rms: float
     elapsed_s: float
     token_text: dict[int, str] = field(default_factory=dict)
+    generator: "GeneratorComparison | None" = None  # set by with_generator when predictions are held against it
 
     @property
     def num_chunks(self) -> int:
@@ -190,6 +191,7 @@ class WorstCaseResult:
             "random_calls_per_chunk": self.random_calls / self.num_chunks if self.num_chunks else 0.0,
             "latent_rms": self.latent_rms,
             "elapsed_s": self.elapsed_s,
+            **(self.generator.summary() if self.generator is not None else {}),
         }
 
     def fragile(self, count: int = 20) -> list[int]:
@@ -209,7 +211,8 @@ class WorstCaseResult:
     def csv_text(self) -> str:
         out = io.StringIO()
         writer = csv.writer(out, lineterminator="\n")
-        writer.writerow(CSV_COLUMNS)
+        gen = self.generator
+        writer.writerow(CSV_COLUMNS + (("generator_error_norm",) if gen is not None else ()))
 
         def num(x: float) -> str:
             return "nan" if np.isnan(x) else f"{x:.6g}"
@@ -221,6 +224,7 @@ class WorstCaseResult:
                 num(self.random_relative_radius[i]), num(self.random_sigma[i]), int(self.position[i]),
                 self.display(self.from_id[i]) if ok else "", self.display(self.to_id[i]) if ok else "",
                 int(self.from_id[i]), int(self.to_id[i]), int(ok), int(self.forward_calls[i]), int(self.backward_calls[i]),
+                *((num(gen.error_norm[i]),) if gen is not None else ()),
             ])
         return out.getvalue()
 
@@ -605,3 +609,81 @@ def report_section(result: WorstCaseResult, fragile_rows: int = 15):
     rows.append("</table>")
     after = "<h3>Most fragile chunks</h3>" + "".join(rows)
     return ReportSection(f"worst-case-{slug}", f"Worst case: {name}", html=html, figures=figures, html_after=after)
+
+
+# ---- against a generator's errors -----------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class GeneratorComparison:
+    error_norm: np.ndarray  # [N] ‖predicted − encoder mean‖; for S > 1 samples the median over samples per chunk
+    below: int  # verified chunks whose worst-case radius is below their error norm
+    verified: int
+    interval: tuple[float, float]  # Wilson 95 % interval of below / verified
+    samples: int
+
+    @property
+    def share(self) -> float | None:
+        return self.below / self.verified if self.verified else None
+
+    def summary(self) -> dict[str, Any]:
+        return {"generator_below": self.below, "generator_compared": self.verified, "generator_below_rate": self.share,
+                "generator_below_interval": list(self.interval) if self.verified else None,
+                "generator_error_norm": "median over samples per chunk" if self.samples > 1 else "one sample per chunk",
+                "generator_error_norm_median": float(np.median(self.error_norm)) if len(self.error_norm) else None}
+
+    def line(self) -> str:
+        if not self.verified:
+            return "No verified chunk to hold against the generator's errors."
+        lo, hi = self.interval
+        per = " (median over its samples)" if self.samples > 1 else ""
+        return (f"The worst-case radius is below the generator's error norm{per} for {self.below:,} of "
+                f"{self.verified:,} verified chunks ({100 * self.share:.1f} %, 95 % interval "
+                f"{100 * lo:.1f}–{100 * hi:.1f} %).")
+
+
+def against_generator(result: WorstCaseResult, predictions, encoder_mean: np.ndarray) -> GeneratorComparison:
+    """Per chunk the generator's error norm ‖predicted − encoder mean‖ (median over samples when S > 1), and the
+    share of verified chunks whose worst-case radius is below it (Wilson 95 % interval).
+
+    `encoder_mean` [N, D] is the encoder mean of the result's chunks. Raises PredictionsError in one sentence when
+    the file is for another codec or other chunks."""
+    norms = np.linalg.norm(predictions.latents.astype(np.float64) - np.asarray(encoder_mean, np.float64)[:, None, :], axis=2) \
+        if _same_chunks(result, predictions.path, predictions.codec_sha256, predictions.token_ids) else None
+    return _compare(result, norms)
+
+
+def against_predictions_result(result: WorstCaseResult, analysis) -> GeneratorComparison:
+    """The same from a finished predictions analysis (its error norms [N, S] of the same codec and chunks)."""
+    prov = analysis.provenance
+    ids = np.asarray(analysis.chunks.token_ids)
+    k = result.chunks.chunk_size
+    padded = np.full(-(-len(ids) // k) * k, -1, dtype=np.int64)
+    padded[: len(ids)] = ids
+    _same_chunks(result, prov["predictions"]["path"], prov["codec"]["sha256"], padded.reshape(-1, k))
+    return _compare(result, np.asarray(analysis.error_norm, dtype=np.float64))
+
+
+def _same_chunks(result: WorstCaseResult, label: str, codec_sha256: str, token_ids: np.ndarray) -> bool:
+    from core.analyses.prediction_file import PredictionsError
+
+    sha = result.provenance.get("codec", {}).get("sha256", "")
+    if sha and codec_sha256 != sha:
+        raise PredictionsError(f"{label} was made for the codec with sha256 {codec_sha256[:12]}…, but the "
+                               f"worst-case result is for sha256 {sha[:12]}…; use predictions for the same codec.")
+    n, k = result.num_chunks, result.chunks.chunk_size
+    ids = np.asarray(result.chunks.token_ids)
+    flat = token_ids.reshape(-1)[: len(ids)]
+    if token_ids.shape[0] != n or token_ids.shape[1] != k or not np.array_equal(flat, ids):
+        raise PredictionsError(f"{label} holds {token_ids.shape[0]:,} chunks of K = {token_ids.shape[1]} whose "
+                               f"token ids are not the {n:,} chunks of the worst-case text; use predictions for the same text.")
+    return True
+
+
+def _compare(result: WorstCaseResult, norms: np.ndarray) -> GeneratorComparison:
+    from core.engine.metrics import wilson_interval
+
+    error = np.median(norms, axis=1)
+    ok = result.verified
+    below = int((result.radius[ok] < error[ok]).sum())
+    return GeneratorComparison(error, below, int(ok.sum()), wilson_interval(below, int(ok.sum())), int(norms.shape[1]))
