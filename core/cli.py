@@ -545,12 +545,14 @@ def print_predictions(result, stream=None) -> None:
 def cmd_predictions(args: argparse.Namespace) -> int:
     from core.analyses.predictions import PREDICTIONS_FOLDER, analyse_predictions, read_predictions
 
+    where = where_from_args(args)
     out = Path(args.out)
     _check_outputs([out], args.force, PREDICTIONS_FOLDER, folder=True)
     predictions = read_predictions(args.predictions)
-    (codec,) = open_checkpoints([args.checkpoint], args.adapter)
-    progress = None if args.quiet else TerminalProgress("sweep")
-    result = analyse_predictions(codec, predictions, repeats=args.repeats, seed=args.seed, sweep_progress=progress)
+    (codec,) = open_checkpoints([args.checkpoint], args.adapter, where)
+    progress = None if args.quiet else TerminalProgress("sweep" if where.here else "sweep shards")
+    result = analyse_predictions(codec, predictions, repeats=args.repeats, seed=args.seed, sweep_progress=progress,
+                                 where=where, adapter=args.adapter)
     result.write(out, force=args.force)
     print(f"wrote {out}/ (predictions.json, " + ", ".join(result.csv_files()) + ")", file=sys.stderr)
     print_predictions(result)
@@ -686,6 +688,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--out", default="predictions", help="output folder (default: predictions)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    add_cluster_arguments(p)
     p.set_defaults(func=cmd_predictions)
 
     for command in sub.choices.values():  # --debug also after the command; absent there, the top level's value stands
