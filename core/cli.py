@@ -403,6 +403,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     if not args.inputs and not args.trend:
         raise ChunkscopeError("give checkpoints or result folders to report on, or --trend FOLDER.")
     settings = _settings_from_args(args)
+    where = where_from_args(args)
     _check_report_outputs(out, figures, args.force)
     sweeps, comparison, points = [], None, []
     paths = [Path(p) for p in args.inputs]
@@ -424,7 +425,7 @@ def cmd_report(args: argparse.Namespace) -> int:
         text, source = _load_text_arg(args.text)
     extra = []
     if files:
-        codecs = open_checkpoints(files, args.adapter)
+        codecs = open_checkpoints(files, args.adapter, where)
         if getattr(args, "worst_case", False):
             from core.analyses.worstcase import WorstCaseSettings, refuse_without_gradients, report_section, worst_case
 
@@ -437,14 +438,20 @@ def cmd_report(args: argparse.Namespace) -> int:
                 progress = None if args.quiet else TerminalProgress(f"worst {codec.name[:10]:<10}")
                 extra.append(report_section(worst_case(codec, chunks, worst_settings, progress=progress, text_source=source)))
         if len(codecs) >= 2:
-            comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"))
+            comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"), where)
         else:
             chunks = chunk_text(text, codecs[0], source)
-            sweeps.append(run_sweep(codecs[0], chunks, settings, text_source=source, progress=None if args.quiet else TerminalProgress(codecs[0].name[:16])))
+            progress = None if args.quiet else TerminalProgress(codecs[0].name[:16])
+            if where.here:
+                sweeps.append(run_sweep(codecs[0], chunks, settings, text_source=source, progress=progress))
+            else:
+                from core.engine.cluster import SweepJob, run_sweeps
+
+                sweeps.extend(run_sweeps([SweepJob(codecs[0], chunks, settings, source, adapter=args.adapter)], where, progress=progress))
     if args.trend:
         if not files:
-            announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter))
-        points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter))
+            announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter), where=where)
+        points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter, where=where))
     if args.predictions:
         from core.analyses.predictions import PredictionsError, analyse_predictions, read_predictions, report_section
 
@@ -453,7 +460,8 @@ def cmd_report(args: argparse.Namespace) -> int:
         if not matching:
             raise PredictionsError(f"{args.predictions} was made for the codec with sha256 {predictions.codec_sha256[:12]}…, "
                                    "and no checkpoint given to report has it; give that checkpoint too.")
-        extra.append(report_section(analyse_predictions(matching[0], predictions, repeats=settings.repeats, seed=settings.seed)))
+        extra.append(report_section(analyse_predictions(matching[0], predictions, repeats=settings.repeats, seed=settings.seed,
+                                                        where=where, adapter=args.adapter)))
     sections = report_sections(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise,
                                extra_sections=extra)
     html = render_report(sections, title=args.title)
@@ -657,6 +665,7 @@ def build_parser() -> argparse.ArgumentParser:
                    "perturbation that changes each chunk, beside the random radius; not for ONNX codecs)")
     p.add_argument("--figures", metavar="DIR", help="also write every figure of the report as DIR/<name>.pdf (with DIR/figures.json naming each)")
     p.add_argument("--force", action="store_true", help="replace an existing report file (and figure folder)")
+    add_cluster_arguments(p)
     p.set_defaults(func=cmd_report)
 
     p = sub.add_parser("worstcase", help="the smallest latent perturbation that changes each chunk",

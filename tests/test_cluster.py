@@ -345,3 +345,11 @@ def test_without_distributed_predictions_workers_says_what_to_install(monkeypatc
     err = capsys.readouterr().err.strip()
     assert err == "chunkscope: running on a cluster needs Dask's distributed package: pip install chunkscope[cluster]."
     assert not out.exists()
+
+
+def test_report_takes_cluster_and_writes_its_page(where, text_file, tmp_path, capsys):
+    # acceptance only: the sharded sweep itself is checked against one process above (common practice)
+    out = tmp_path / "report.html"
+    assert main(["report", str(PLAIN), "--text", str(text_file), "--out", str(out), "--cluster", where.address] + ARGS) == 0
+    assert "sharding the work over the Dask scheduler" in capsys.readouterr().err
+    assert out.read_text(encoding="utf-8").lstrip().lower().startswith("<!doctype html")
