@@ -672,7 +672,8 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Per chunk, search for the smallest perturbation of its mean that changes the decoded "
                                    "chunk (following gradients through the decoder; not for ONNX codecs), verify it, and set "
                                    "it beside the noise norm at which a data-scale sweep with the same seed first breaks the "
-                                   "chunk; write DIR/worst_case.json and DIR/worst_case.csv.")
+                                   "chunk; write DIR/worst_case.json and DIR/worst_case.csv. Runs in this process (no --workers): "
+                                   "the gradient search and the random-radius sweep are not sharded.")
     p.add_argument("checkpoint")
     p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     p.add_argument("--text", help="UTF-8 text file to evaluate on (default: the bundled demo text)")
