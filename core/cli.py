@@ -403,6 +403,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     if not args.inputs and not args.trend:
         raise ChunkscopeError("give checkpoints or result folders to report on, or --trend FOLDER.")
     settings = _settings_from_args(args)
+    where = where_from_args(args)
     _check_report_outputs(out, figures, args.force)
     sweeps, comparison, points = [], None, []
     paths = [Path(p) for p in args.inputs]
@@ -424,7 +425,7 @@ def cmd_report(args: argparse.Namespace) -> int:
         text, source = _load_text_arg(args.text)
     extra = []
     if files:
-        codecs = open_checkpoints(files, args.adapter)
+        codecs = open_checkpoints(files, args.adapter, where)
         if getattr(args, "worst_case", False):
             from core.analyses.worstcase import WorstCaseSettings, refuse_without_gradients, report_section, worst_case
 
@@ -437,14 +438,20 @@ def cmd_report(args: argparse.Namespace) -> int:
                 progress = None if args.quiet else TerminalProgress(f"worst {codec.name[:10]:<10}")
                 extra.append(report_section(worst_case(codec, chunks, worst_settings, progress=progress, text_source=source)))
         if len(codecs) >= 2:
-            comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"))
+            comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"), where)
         else:
             chunks = chunk_text(text, codecs[0], source)
-            sweeps.append(run_sweep(codecs[0], chunks, settings, text_source=source, progress=None if args.quiet else TerminalProgress(codecs[0].name[:16])))
+            progress = None if args.quiet else TerminalProgress(codecs[0].name[:16])
+            if where.here:
+                sweeps.append(run_sweep(codecs[0], chunks, settings, text_source=source, progress=progress))
+            else:
+                from core.engine.cluster import SweepJob, run_sweeps
+
+                sweeps.extend(run_sweeps([SweepJob(codecs[0], chunks, settings, source, adapter=args.adapter)], where, progress=progress))
     if args.trend:
         if not files:
-            announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter))
-        points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter))
+            announce_adapter(args.adapter, checkpoints_in(args.trend, args.adapter), where=where)
+        points = list(trend(args.trend, text, settings, text_source=source, adapter=args.adapter, where=where))
     if args.predictions:
         from core.analyses.predictions import PredictionsError, analyse_predictions, read_predictions, report_section
 
@@ -453,7 +460,8 @@ def cmd_report(args: argparse.Namespace) -> int:
         if not matching:
             raise PredictionsError(f"{args.predictions} was made for the codec with sha256 {predictions.codec_sha256[:12]}…, "
                                    "and no checkpoint given to report has it; give that checkpoint too.")
-        extra.append(report_section(analyse_predictions(matching[0], predictions, repeats=settings.repeats, seed=settings.seed)))
+        extra.append(report_section(analyse_predictions(matching[0], predictions, repeats=settings.repeats, seed=settings.seed,
+                                                        where=where, adapter=args.adapter)))
     sections = report_sections(sweeps=sweeps, comparison=comparison, trend_points=points, trend_noise=settings.noise,
                                extra_sections=extra)
     html = render_report(sections, title=args.title)
@@ -560,12 +568,14 @@ def print_predictions(result, stream=None) -> None:
 def cmd_predictions(args: argparse.Namespace) -> int:
     from core.analyses.predictions import PREDICTIONS_FOLDER, analyse_predictions, read_predictions
 
+    where = where_from_args(args)
     out = Path(args.out)
     _check_outputs([out], args.force, PREDICTIONS_FOLDER, folder=True)
     predictions = read_predictions(args.predictions)
-    (codec,) = open_checkpoints([args.checkpoint], args.adapter)
-    progress = None if args.quiet else TerminalProgress("sweep")
-    result = analyse_predictions(codec, predictions, repeats=args.repeats, seed=args.seed, sweep_progress=progress)
+    (codec,) = open_checkpoints([args.checkpoint], args.adapter, where)
+    progress = None if args.quiet else TerminalProgress("sweep" if where.here else "sweep shards")
+    result = analyse_predictions(codec, predictions, repeats=args.repeats, seed=args.seed, sweep_progress=progress,
+                                 where=where, adapter=args.adapter)
     result.write(out, force=args.force)
     print(f"wrote {out}/ (predictions.json, " + ", ".join(result.csv_files()) + ")", file=sys.stderr)
     print_predictions(result)
@@ -670,13 +680,15 @@ def build_parser() -> argparse.ArgumentParser:
                    "perturbation that changes each chunk, beside the random radius; not for ONNX codecs)")
     p.add_argument("--figures", metavar="DIR", help="also write every figure of the report as DIR/<name>.pdf (with DIR/figures.json naming each)")
     p.add_argument("--force", action="store_true", help="replace an existing report file (and figure folder)")
+    add_cluster_arguments(p)
     p.set_defaults(func=cmd_report)
 
     p = sub.add_parser("worstcase", help="the smallest latent perturbation that changes each chunk",
                        description="Per chunk, search for the smallest perturbation of its mean that changes the decoded "
                                    "chunk (following gradients through the decoder; not for ONNX codecs), verify it, and set "
                                    "it beside the noise norm at which a data-scale sweep with the same seed first breaks the "
-                                   "chunk; write DIR/worst_case.json and DIR/worst_case.csv.")
+                                   "chunk; write DIR/worst_case.json and DIR/worst_case.csv. Runs in this process (no --workers): "
+                                   "the gradient search and the random-radius sweep are not sharded.")
     p.add_argument("checkpoint")
     p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     p.add_argument("--text", help="UTF-8 text file to evaluate on (default: the bundled demo text)")
@@ -703,6 +715,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument("--out", default="predictions", help="output folder (default: predictions)")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
+    add_cluster_arguments(p)
     p.set_defaults(func=cmd_predictions)
 
     for command in sub.choices.values():  # --debug also after the command; absent there, the top level's value stands

@@ -291,3 +291,65 @@ def test_a_worker_killed_mid_sweep_leaves_the_result_identical(cluster, where, t
     client.wait_for_workers(2, timeout=60)
     assert set(client.run(os.getpid).values()) != set(pids_before.values())  # the nanny started a new process
     assert_same_sweep(one_process["plain"], result)
+
+
+def _numbers_alike(a, b, path="predictions.json"):
+    """Counts (ints, strings) exactly equal, floats within 1e-9 relative (DESIGN.md: sums to float rounding)."""
+    if isinstance(a, dict):
+        assert a.keys() == b.keys(), path
+        for key in a:
+            _numbers_alike(a[key], b[key], f"{path}.{key}")
+    elif isinstance(a, list):
+        assert len(a) == len(b), path
+        for i, (x, y) in enumerate(zip(a, b)):
+            _numbers_alike(x, y, f"{path}[{i}]")
+    elif isinstance(a, float) or isinstance(b, float):
+        assert a == pytest.approx(b, rel=1e-9, abs=1e-12, nan_ok=True), path
+    else:
+        assert a == b, path
+
+
+def test_sharded_predictions_equal_one_process(where, text_file, tmp_path, capsys):
+    # the reference is the same command in this process; its numbers are checked against outside
+    # references in test_core_predictions.py
+    import json
+
+    import torch
+
+    from core.analyses.prediction_file import write_predictions
+    from core.engine.noise import encode_chunks
+
+    codec = open_checkpoint(TOLERANT)
+    chunks = chunk_text(TEXT, codec, "t")
+    assert chunks.num_chunks > 256  # the sweep has more than one shard
+    mean = encode_chunks(codec, chunks).mean
+    eps = torch.randn(len(mean), 2, mean.shape[1], generator=torch.Generator().manual_seed(3))
+    preds = tmp_path / "preds.safetensors"
+    write_predictions(preds, (mean.unsqueeze(1) + 0.5 * mean.square().mean(0).sqrt() * eps).numpy(),
+                      chunks.ids().numpy(), codec.sha256, "cluster test", text=TEXT)
+    base = ["predictions", str(TOLERANT), str(preds), "--quiet", "--repeats", "2"]
+    assert main(base + ["--out", str(tmp_path / "here")]) == 0
+    assert main(base + ["--out", str(tmp_path / "there"), "--cluster", where.address]) == 0
+    assert "sharding the work over the Dask scheduler" in capsys.readouterr().err
+    here, there = (json.loads((tmp_path / d / "predictions.json").read_text(encoding="utf-8")) for d in ("here", "there"))
+    for doc in (here, there):
+        doc.pop("provenance", None)  # where and when it ran differ by design
+        doc.pop("elapsed_s", None)
+    _numbers_alike(here, there)
+
+
+def test_without_distributed_predictions_workers_says_what_to_install(monkeypatch, tmp_path, capsys):
+    monkeypatch.setitem(sys.modules, "distributed", None)  # `import distributed` now raises ImportError
+    out = tmp_path / "out"
+    assert main(["predictions", str(TOLERANT), str(tmp_path / "none.safetensors"), "--workers", "2", "--out", str(out)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err == "chunkscope: running on a cluster needs Dask's distributed package: pip install chunkscope[cluster]."
+    assert not out.exists()
+
+
+def test_report_takes_cluster_and_writes_its_page(where, text_file, tmp_path, capsys):
+    # acceptance only: the sharded sweep itself is checked against one process above (common practice)
+    out = tmp_path / "report.html"
+    assert main(["report", str(PLAIN), "--text", str(text_file), "--out", str(out), "--cluster", where.address] + ARGS) == 0
+    assert "sharding the work over the Dask scheduler" in capsys.readouterr().err
+    assert out.read_text(encoding="utf-8").lstrip().lower().startswith("<!doctype html")

@@ -295,7 +295,7 @@ def verdict_text(s: dict[str, Any]) -> str:
 
 def analyse_predictions(codec, predictions: Predictions, repeats: int = 4, seed: int = 0, bootstrap: int = BOOTSTRAP,
                         progress: Progress | None = None, should_stop: ShouldStop | None = None,
-                        sweep_progress: Progress | None = None) -> PredictionsResult:
+                        sweep_progress: Progress | None = None, where=None, adapter: str | None = None) -> PredictionsResult:
     """Everything of DESIGN.md's "Generator errors" for one predictions file and its codec."""
     codec = opened(codec)
     check_against(predictions, codec)
@@ -333,8 +333,15 @@ def analyse_predictions(codec, predictions: Predictions, repeats: int = 4, seed:
 
     # the data-scale sweep of the same chunks
     settings = SweepSettings(sigmas=sweep_grid(effective_sigma), repeats=repeats, noise="data-scale", seed=seed)
-    sweep = run_sweep(codec, chunks, settings, progress=sweep_progress, should_stop=should_stop, encoded=encoded,
-                      text_source=f"the chunks of {predictions.path}")
+    source = f"the chunks of {predictions.path}"
+    if where is None or where.here:
+        sweep = run_sweep(codec, chunks, settings, progress=sweep_progress, should_stop=should_stop, encoded=encoded,
+                          text_source=source)
+    else:  # the same sweep's shards on Dask (core.engine.cluster); workers open the checkpoint themselves
+        from core.engine.cluster import SweepJob, run_sweeps
+
+        (sweep,) = run_sweeps([SweepJob(codec, chunks, settings, source, encoded, adapter)], where,
+                              progress=sweep_progress, should_stop=should_stop)
     grid = np.asarray(sweep.sigmas)
     t = chunks.num_tokens
     sweep_wrong_tok = np.zeros((n * k, len(grid)))
