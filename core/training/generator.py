@@ -164,10 +164,9 @@ def marginal_energy_score(means: torch.Tensor, train_means: torch.Tensor, sample
 
 
 def _lr_at(step: int, recipe: GeneratorRecipe) -> float:
-    if step < recipe.warmup_steps:
-        return recipe.lr * (step + 1) / recipe.warmup_steps
-    progress = min(1.0, (step - recipe.warmup_steps) / max(1, recipe.steps - recipe.warmup_steps))
-    return recipe.lr * (0.02 + 0.98 * 0.5 * (1 + math.cos(math.pi * progress)))
+    from core.training.train import warmup_cosine_lr
+
+    return warmup_cosine_lr(step, recipe.lr, recipe.warmup_steps, recipe.steps, floor=0.02)
 
 
 def save_generator(model: NextVectorGenerator, recipe: GeneratorRecipe, card: dict, path: Path) -> None:

@@ -101,12 +101,16 @@ def _sample_batch(stream: torch.Tensor, recipe: Recipe, generator: torch.Generat
     return ids
 
 
+def warmup_cosine_lr(step: int, lr: float, warmup_steps: int, steps: int, floor: float) -> float:
+    """Linear warm-up, then cosine decay to `floor` × lr at the last step: the schedule of every recipe here."""
+    if step < warmup_steps:
+        return lr * (step + 1) / warmup_steps
+    progress = (step - warmup_steps) / max(1, steps - warmup_steps)
+    return lr * (floor + (1 - floor) * 0.5 * (1 + math.cos(math.pi * min(1.0, progress))))
+
+
 def _lr_at(step: int, recipe: Recipe) -> float:
-    if step < recipe.warmup_steps:
-        return recipe.lr * (step + 1) / recipe.warmup_steps
-    progress = (step - recipe.warmup_steps) / max(1, recipe.steps - recipe.warmup_steps)
-    floor = recipe.min_lr_ratio
-    return recipe.lr * (floor + (1 - floor) * 0.5 * (1 + math.cos(math.pi * min(1.0, progress))))
+    return warmup_cosine_lr(step, recipe.lr, recipe.warmup_steps, recipe.steps, recipe.min_lr_ratio)
 
 
 def training_loss(
