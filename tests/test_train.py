@@ -139,3 +139,49 @@ def test_a_run_keeps_checkpoints_on_a_doubling_schedule_with_step_and_loss(tmp_p
     # the last kept checkpoint is the final model's weights
     last, ref = load_codec(kept[-1]).codec.model.state_dict(), final.model.state_dict()
     assert all(torch.equal(last[k], ref[k]) for k in ref)
+
+
+def test_the_character_table_names_each_character_by_unicodedata():
+    # each line is a character and its Unicode name (the Unicode Character Database via unicodedata,
+    # Python's standard library), lower-cased; only characters that have a name are listed
+    import unicodedata
+
+    from core.training.corpus import CHARACTER_RANGES, character_table
+
+    lines = character_table().splitlines()
+    expected = [chr(c) for low, high in CHARACTER_RANGES for c in range(low, high + 1) if unicodedata.name(chr(c), "")]
+    assert [line.split(" ", 1)[0] for line in lines] == expected
+    assert all(line.split(" ", 1)[1] == unicodedata.name(line[0]).lower() for line in lines)
+    assert "é latin small letter e with acute" in lines and "€ euro sign" in lines  # from memory: their Unicode names
+
+
+def test_the_table_is_written_between_the_readme_markers_only(tmp_path, shared):
+    from core.training.train import TABLE_BEGIN, TABLE_END, card_table, write_table_into_readme
+
+    corpus, tokenizer = shared
+    train(replace(TINY, steps=5), tmp_path / "tiny.safetensors", log=lambda _: None, corpus=corpus, tokenizer=tokenizer)
+    readme = tmp_path / "README.md"
+    readme.write_text(f"# head\n{TABLE_BEGIN}\nold table\n{TABLE_END}\ntail\n", encoding="utf-8")
+    write_table_into_readme(tmp_path)
+    text = readme.read_text(encoding="utf-8")
+    assert text.startswith(f"# head\n{TABLE_BEGIN}\n") and text.endswith(f"{TABLE_END}\ntail\n")
+    assert "old table" not in text and card_table(tmp_path) in text and "`tiny`" in text
+    readme.write_text("no markers\n", encoding="utf-8")
+    with pytest.raises(ValueError, match="no table markers"):
+        write_table_into_readme(tmp_path)
+
+
+def test_outside_texts_are_measured_only_when_present(tmp_path, monkeypatch, shared):
+    import core.training.train as train_module
+
+    corpus, tokenizer = shared
+    prose = tmp_path / "prose.txt"
+    prose.write_text("Cache the result so the next call is fast.\n" * 20, encoding="utf-8")
+    monkeypatch.setattr(train_module, "OUTSIDE_TEXTS", (("here", str(prose)), ("absent", str(tmp_path / "nothing.txt"))))
+    found = train_module.outside_texts("")
+    assert [label for label, _, _ in found] == ["here"]
+    codec = train(replace(TINY, steps=5), tmp_path / "tiny.safetensors", log=lambda _: None, corpus=corpus, tokenizer=tokenizer)
+    # the tiny corpus has no stdlib path: the card's outside texts are measured from OUTSIDE_TEXTS as found
+    texts = codec.card["measured"]["outside"]["texts"]
+    assert [t["label"] for t in texts] == ["here"] and texts[0]["tokens"] > 0
+    assert 0.0 <= texts[0]["token_accuracy_sigma0"] <= 1.0 and set(texts[0]["tolerance_data_scale"]) == {"0.999", "0.99", "0.9"}

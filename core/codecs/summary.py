@@ -68,6 +68,12 @@ def measured_rows(card: Mapping[str, Any]) -> list[Row]:
             tokens = part.get("tokens")
             on = f" ({tokens:,})" if isinstance(tokens, int) else ""
             rows.append((label, f"{_pct(part['token_accuracy_sigma0'])} of tokens right{on}"))
+    outside = measured.get("outside", {}).get("texts") if isinstance(measured.get("outside"), Mapping) else None
+    if isinstance(outside, list):
+        parts = [f"{_pct(t['token_accuracy_sigma0'])} {t.get('label', '?')}" for t in outside
+                 if isinstance(t, Mapping) and isinstance(t.get("token_accuracy_sigma0"), (int, float))]
+        if parts:
+            rows.append(("outside prose σ = 0", " · ".join(parts)))
     tolerance = measured.get("tolerance")
     if isinstance(tolerance, Mapping):
         for noise, unit in (("data-scale", "relative σ"), ("isotropic", "absolute σ")):
@@ -118,6 +124,11 @@ def card_rows(card: Mapping[str, Any], prefix: str = "", limit: int = 80) -> lis
             continue
         if isinstance(value, Mapping):
             rows.extend(card_rows(value, name + ".", limit - len(rows)))
+        elif isinstance(value, list) and value and all(isinstance(v, Mapping) for v in value):
+            for index, item in enumerate(value):
+                if len(rows) >= limit:
+                    break
+                rows.extend(card_rows(item, f"{name}[{index}].", limit - len(rows)))
         elif isinstance(value, float):
             rows.append((name, f"{value:.4g}"))
         elif isinstance(value, list):

@@ -1,4 +1,5 @@
-"""The training corpus: docstrings and comments of the local Python standard library.
+"""The training corpus: docstrings and comments of the local Python standard library, with its
+language reference prose and a table of the non-ASCII characters of ordinary prose.
 
 Every machine with Python has it, so the sample models can be rebuilt offline; nothing
 is ever downloaded. Different Python versions give slightly different corpora, which is
@@ -12,7 +13,14 @@ Rules (also returned in `CorpusInfo.rule`):
   `inspect.cleandoc` leaves them), then its comments in source order with the leading
   `#` and one space removed, shebang and coding lines dropped; each piece ends with a
   newline and files are joined with one blank line;
-- split: a file is held out when `int(sha256(relative posix path), 16) % 10 == 0`.
+- split: a file is held out when `int(sha256(relative posix path), 16) % 10 == 0`;
+- prose (training split only, so the held-out split stays docstrings and comments): the
+  values of `pydoc_data/topics.py`'s `topics` dict, the language reference's English text,
+  in sorted key order (read with `ast`, never imported);
+- characters (training split only): a table of the characters in `CHARACTER_RANGES`, one
+  line each, `<char> <its unicodedata name in lower case>`, repeated `CHARACTER_TABLE_REPEATS`
+  times, so the accented letters, dashes, quotes and symbols of ordinary prose occur often
+  enough to be learnt (the tokenizer gives each a whole-character token: see train.py).
 """
 
 from __future__ import annotations
@@ -24,6 +32,7 @@ import io
 import sys
 import sysconfig
 import tokenize
+import unicodedata
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
@@ -38,6 +47,44 @@ FILE_RULE = (
     + ", ".join(sorted(SKIP_DIRS))
     + f" and files over {MAX_FILE_BYTES} bytes; docstrings (ast) then comments (tokenize)"
 )
+
+
+TOPICS_FILE = "pydoc_data/topics.py"
+# Latin-1 letters and symbols, Latin Extended-A, Greek letters, dashes/quotes/ellipsis/primes, the euro
+# sign, minus and the two inequalities: the non-ASCII characters of ordinary European prose
+CHARACTER_RANGES = ((0x00A1, 0x00AC), (0x00AE, 0x00FF), (0x0100, 0x017F), (0x0391, 0x03A9), (0x03B1, 0x03C9),
+                    (0x2010, 0x2027), (0x2030, 0x203A), (0x20AC, 0x20AC), (0x2212, 0x2212), (0x2264, 0x2265))
+CHARACTER_TABLE_REPEATS = 40
+PROSE_RULE = (f"training split also holds the values of {TOPICS_FILE}'s topics dict (sorted keys) and a "
+              f"character table (unicodedata names) of {len(CHARACTER_RANGES)} ranges, {CHARACTER_TABLE_REPEATS} times")
+
+
+def character_table() -> str:
+    """One line per character of CHARACTER_RANGES that has a name: the character, a space, its name."""
+    lines = []
+    for low, high in CHARACTER_RANGES:
+        for code in range(low, high + 1):
+            name = unicodedata.name(chr(code), "")
+            if name:
+                lines.append(f"{chr(code)} {name.lower()}\n")
+    return "".join(lines)
+
+
+def topics_texts(root: Path) -> list[str]:
+    """The reference topics' texts, in sorted key order; empty when the file is missing or unreadable."""
+    path = root / TOPICS_FILE
+    try:
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, SyntaxError, ValueError):
+        return []
+    for node in tree.body:
+        if isinstance(node, ast.Assign) and any(getattr(t, "id", "") == "topics" for t in node.targets):
+            try:
+                topics = ast.literal_eval(node.value)
+            except ValueError:
+                return []
+            return [str(topics[key]).strip() + "\n" for key in sorted(topics) if str(topics[key]).strip()]
+    return []
 
 
 @dataclass(frozen=True)
@@ -151,12 +198,16 @@ def build_corpus(stdlib_path: str | None = None) -> Corpus:
         if not text:
             continue
         (held_out if is_held_out(rel) else train).append(text)
+    train_files = len(train)
+    prose = topics_texts(root)
+    train.extend(prose)
+    train.extend([character_table()] * CHARACTER_TABLE_REPEATS)
     info = CorpusInfo(
         python_version=sys.version.split()[0],
         stdlib_path=str(root),
-        rule=FILE_RULE,
+        rule=FILE_RULE + "; " + PROSE_RULE + f" ({len(prose)} topics found)",
         split_rule=SPLIT_RULE,
-        train_files=len(train),
+        train_files=train_files,
         held_out_files=len(held_out),
         train_characters=sum(len(t) for t in train),
         held_out_characters=sum(len(t) for t in held_out),

@@ -34,7 +34,7 @@ import torch
 from torch import nn
 
 from core.codecs.checkpoint import Codec, save_codec
-from core.training.corpus import Corpus, build_corpus
+from core.training.corpus import CHARACTER_TABLE_REPEATS, Corpus, build_corpus, character_table
 from core.codecs.model import ChunkMLP, build_model
 from core.engine.text import Chunks, chunk_text, demo_text, text_sha256
 from core.codecs.tokenizer import MASK_TOKEN, PAD_TOKEN, train_byte_bpe
@@ -43,6 +43,7 @@ from core.training.recipes import RECIPES, Recipe, add_arguments  # noqa: F401 (
 Log = Callable[[str], None]
 
 MASK_ID = 1
+FIRST_ORDINARY_ID = 2  # <pad> is 0 and <mask> is 1 in the samples' tokenizer (train_byte_bpe)
 HELD_OUT_TOKENS = 50_000
 SWEEP_TOKENS = 10_000
 SWEEP_REPEATS = 2
@@ -53,12 +54,40 @@ DATA_SCALE_SIGMAS = (0.0,) + tuple(round(0.003 * (1000 ** (i / 21)), 6) for i in
 ISOTROPIC_SIGMAS = (0.0,) + tuple(round(0.001 * (10_000 ** (i / 21)), 6) for i in range(22))
 
 
+# the tokenizer sees the character table this many times in all (the training split holds it
+# CHARACTER_TABLE_REPEATS times): enough for a byte-level BPE to learn each two- and three-byte
+# character as one token, while the codec's training stream keeps the table a small share
+TOKENIZER_TABLE_REPEATS = 340
+# English prose the project never trains on, measured in each card when the machine has it:
+# Debian's licence texts, and the licence of the Python that runs the recipe
+OUTSIDE_TEXTS = (
+    ("GPL-3", "/usr/share/common-licenses/GPL-3"),
+    ("Apache-2.0", "/usr/share/common-licenses/Apache-2.0"),
+    ("Python LICENSE.txt", "{stdlib}/LICENSE.txt"),
+)
+
+
 @lru_cache(maxsize=2)
 def shared_data(vocab_size: int = 2048) -> tuple[Corpus, Any]:
     """The corpus and the tokenizer trained on its training split, built once per process."""
     corpus = build_corpus()
-    tokenizer = train_byte_bpe(corpus.train, vocab_size)
+    extra = [character_table()] * max(0, TOKENIZER_TABLE_REPEATS - CHARACTER_TABLE_REPEATS)
+    tokenizer = train_byte_bpe(corpus.train + extra, vocab_size)
     return corpus, tokenizer
+
+
+def outside_texts(stdlib_path: str) -> list[tuple[str, str, str]]:
+    """(label, path, text) of each OUTSIDE_TEXTS file this machine has and can read as UTF-8."""
+    found = []
+    for label, pattern in OUTSIDE_TEXTS:
+        path = pattern.format(stdlib=stdlib_path)
+        try:
+            text = Path(path).read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError):
+            continue
+        if text.strip():
+            found.append((label, path, text))
+    return found
 
 
 def tokenizer_sha256(tokenizer) -> str:
@@ -98,6 +127,10 @@ def _sample_batch(stream: torch.Tensor, recipe: Recipe, generator: torch.Generat
         keep = torch.randint(1, k, (recipe.batch_size,), generator=generator)
         padded = tail.unsqueeze(1) & (torch.arange(k).unsqueeze(0) >= keep.unsqueeze(1))
         ids = ids.masked_fill(padded, pad_id)
+    if recipe.random_token_prob > 0:
+        swap = (torch.rand(ids.shape, generator=generator) < recipe.random_token_prob) & (ids != pad_id)
+        drawn = torch.randint(FIRST_ORDINARY_ID, recipe.vocab_size, ids.shape, generator=generator)
+        ids = torch.where(swap, drawn, ids)
     return ids
 
 
@@ -181,8 +214,9 @@ def _tolerances_dict(result) -> dict[str, dict]:
 
 
 def measure(codec: Codec, held_out_text: str, log: Log = print, sweep_tokens: int = SWEEP_TOKENS,
-            repeats: int = SWEEP_REPEATS, held_out_tokens: int = HELD_OUT_TOKENS) -> dict[str, Any]:
-    """The card's measured numbers: sigma-0 accuracy on held-out and demo text, tolerances, latent RMS."""
+            repeats: int = SWEEP_REPEATS, held_out_tokens: int = HELD_OUT_TOKENS,
+            outside: Sequence[tuple[str, str, str]] = ()) -> dict[str, Any]:
+    """The card's measured numbers: sigma-0 accuracy on held-out, demo and outside texts, tolerances, latent RMS."""
     from core.engine.sweep import SweepSettings, run_sweep
 
     measured: dict[str, Any] = {}
@@ -219,6 +253,26 @@ def measure(codec: Codec, held_out_text: str, log: Log = print, sweep_tokens: in
         "seed": SWEEP_SEED,
         "sigmas": {"isotropic": list(ISOTROPIC_SIGMAS), "data-scale": list(DATA_SCALE_SIGMAS)},
     }
+    outside_measured = []
+    for label, path, text in outside:
+        chunks = chunk_text(text, codec)
+        result = run_sweep(codec, chunks, SweepSettings(sigmas=DATA_SCALE_SIGMAS, repeats=repeats, noise="data-scale",
+                                                        seed=SWEEP_SEED))
+        outside_measured.append({
+            "label": label,
+            "path": path,
+            "text_sha256": chunks.text_sha256,
+            "tokens": chunks.num_tokens,
+            "token_accuracy_sigma0": result.curves[0].token_accuracy,
+            "tolerance_data_scale": _tolerances_dict(result),
+        })
+        log(f"  outside {label}: sigma 0 {100 * result.curves[0].token_accuracy:.3f} % of {chunks.num_tokens} tokens, "
+            "data-scale " + ", ".join(f"{lvl}: {t['sigma']}" for lvl, t in outside_measured[-1]["tolerance_data_scale"].items()))
+    measured["outside"] = {
+        "rule": "English prose the corpus does not hold, each file measured whole when this machine has it; "
+                f"data-scale grid, {repeats} repeats, seed {SWEEP_SEED}",
+        "texts": outside_measured,
+    }
     if codec.variational:
         ids = sweep_chunks.ids()
         with torch.inference_mode():
@@ -247,6 +301,9 @@ def train(
     if tokenizer.token_to_id(MASK_TOKEN) != MASK_ID:
         raise ValueError("the tokenizer's <mask> token is not id 1")
     torch.set_num_threads(recipe.threads)
+    # a well-trained plain codec's softmax holds many probabilities below float32's normal range; on a
+    # CPU, arithmetic on such subnormal numbers is several times slower (measured 3x per step here)
+    torch.set_flush_denormal(True)
     torch.manual_seed(recipe.seed)
     generator = torch.Generator().manual_seed(recipe.seed)
     stream = torch.from_numpy(token_stream(tokenizer, corpus.train))
@@ -343,7 +400,8 @@ def train(
     if measure_card:
         started_measure = time.perf_counter()
         try:
-            card["measured"] = measure(codec, corpus.held_out_text, log)
+            card["measured"] = measure(codec, corpus.held_out_text, log,
+                                       outside=outside_texts(corpus.info.stdlib_path))
         except KeyboardInterrupt:
             log(f"[{recipe.name}] measuring interrupted; the card has no measured numbers")
         card["measure_wall_seconds"] = round(time.perf_counter() - started_measure, 1)
@@ -416,6 +474,7 @@ def card_table(folder: str | Path) -> str:
         f"| tolerance isotropic {levels} | tolerance data-scale {levels} | latent RMS | train time | file |",
         "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |",
     ]
+    outside: list[str] = []
     for path in sorted(Path(folder).glob("*.safetensors")):
         c = load_codec(path)
         r, m = c.card["recipe"], c.card["measured"]
@@ -424,6 +483,8 @@ def card_table(folder: str | Path) -> str:
                    f"{r['latent_dropout']:g}, input masking {r['token_mask_prob']:g}")
         else:
             how = "reconstruction only"
+        if r.get("random_token_prob"):
+            how += f"; uniform token replacement {r['random_token_prob']:g}"
         iso = " / ".join(tol(m["tolerance"]["isotropic"][k]) for k in keys)
         ds = " / ".join(tol(m["tolerance"]["data-scale"][k]) for k in keys)
         rows.append(
@@ -432,12 +493,42 @@ def card_table(folder: str | Path) -> str:
             f"| {100 * m['demo']['token_accuracy_sigma0']:.2f} % | {iso} | {ds} | {m['latent_rms']:.3g} "
             f"| {c.card['train_wall_seconds'] / 60:.1f} min | {path.stat().st_size / 1e6:.1f} MB |"
         )
+        for text in m.get("outside", {}).get("texts", []):
+            outside.append(
+                f"| `{path.stem}` | {text['label']} | {text['tokens']:,} | {100 * text['token_accuracy_sigma0']:.3f} % "
+                f"| {' / '.join(tol(text['tolerance_data_scale'][k]) for k in keys)} |"
+            )
+    if outside:
+        rows += [
+            "",
+            f"| model | outside text | tokens | acc. σ=0 | tolerance data-scale {levels} |",
+            "| --- | --- | --- | --- | --- |",
+        ] + outside
     return "\n".join(rows)
+
+
+TABLE_BEGIN = "<!-- the table below is written by: python -m core.training.train --table sample_models --readme -->"
+TABLE_END = "<!-- end of the written table -->"
+
+
+def write_table_into_readme(folder: str | Path) -> Path:
+    """Replace the block between TABLE_BEGIN and TABLE_END in FOLDER/README.md with card_table(FOLDER)."""
+    readme = Path(folder) / "README.md"
+    text = readme.read_text(encoding="utf-8")
+    start, end = text.find(TABLE_BEGIN), text.find(TABLE_END)
+    if start < 0 or end < start:
+        raise ValueError(f"{readme} has no table markers ({TABLE_BEGIN!r} … {TABLE_END!r})")
+    head = text[: start + len(TABLE_BEGIN)]
+    readme.write_text(head + "\n\n" + card_table(folder) + "\n\n" + text[end:], encoding="utf-8")
+    return readme
 
 
 def run_from_args(args: argparse.Namespace) -> int:
     if getattr(args, "table", None):
-        print(card_table(args.table))
+        if getattr(args, "readme", False):
+            print(f"wrote the table into {write_table_into_readme(args.table)}")
+        else:
+            print(card_table(args.table))
         return 0
     if getattr(args, "generator", False):
         from core.training.generator import DEFAULT_OUT, GeneratorRecipe, train_generator
@@ -451,6 +542,9 @@ def run_from_args(args: argparse.Namespace) -> int:
         recipe = _override(RECIPES[name], args)
         out = Path(args.out_dir) / f"{name}.safetensors" if args.all or not args.out else Path(args.out)
         train(recipe, out, corpus=corpus, tokenizer=tokenizer, measure_card=not args.no_measure)
+    readme = Path(args.out_dir) / "README.md"
+    if args.all and not args.no_measure and readme.is_file() and TABLE_BEGIN in readme.read_text(encoding="utf-8"):
+        print(f"wrote the table into {write_table_into_readme(args.out_dir)}")
     return 0
 
 
