@@ -29,7 +29,7 @@ from core.training.train import (
 SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_models"
 NAMES = sorted(RECIPES)
 # a small data-scale grid on the first 4000 demo tokens, so the comparison takes seconds
-QUICK_GRID = (0.0, 0.05, 0.1, 0.2, 0.3, 0.45, 0.7)
+QUICK_GRID = (0.0, 0.05, 0.1, 0.2, 0.3, 0.45, 0.7, 1.0, 1.4)
 QUICK_TOKENS = 4000
 
 
@@ -162,7 +162,7 @@ def test_data_scale_tolerance_and_latent_rms_match_card(name):
 
 
 def test_tolerant_takes_three_times_plains_data_scale_noise_on_held_out_text():
-    # sample_models/README.md: tolerant's 99 % data-scale tolerance is 3.07x plain's on this slice; and
+    # sample_models/README.md: tolerant's 99 % data-scale tolerance is 3.18x plain's on this slice; and
     # plain-wide sits between them ("what a bigger latent alone buys", "what the regularisers add on top")
     plain, wide, tolerant = (held_out_data_scale_sweep(n).tolerance(0.99).sigma for n in ("plain", "plain-wide", "tolerant"))
     assert tolerant >= 3 * plain
@@ -170,10 +170,57 @@ def test_tolerant_takes_three_times_plains_data_scale_noise_on_held_out_text():
 
 
 def test_tolerant_takes_more_data_scale_noise_than_plain_on_the_demo_text():
-    # a second text, out of the training domain, where the 3x of the held-out text does not hold: measured
-    # 2.77x on this slice and grid (2.69x on the whole demo text with the card's grid and 2 repeats); the
-    # threshold 2.5x is that measurement less a margin for the coarse grid and the single repeat
+    # a second text, out of the training domain (our own prose, with accented names): measured 3.02x on this
+    # slice and grid (3.11x on the whole demo text with the card's grid and 2 repeats); the threshold 2.8x
+    # is that measurement less a margin for the coarse grid and the single repeat
     plain = demo_sweep("plain", QUICK_GRID, QUICK_TOKENS).tolerance(0.99)
     tolerant = demo_sweep("tolerant", QUICK_GRID, QUICK_TOKENS).tolerance(0.99)
     assert plain.status == "ok" and tolerant.status == "ok"
-    assert tolerant.sigma >= 2.5 * plain.sigma
+    assert tolerant.sigma >= 2.8 * plain.sigma
+
+
+def outside_prose() -> list[tuple[dict, Chunks]]:
+    """Each outside text a card was measured on that this machine has, byte for byte (by its sha256)."""
+    from core.training.train import outside_texts
+
+    entries = codec("plain").card["measured"].get("outside", {}).get("texts", [])
+    found = []
+    for label, _path, text in outside_texts(card_corpus()["stdlib_path"]):
+        entry = next((e for e in entries if e["label"] == label), None)
+        chunks = chunk_text(text, codec("plain"))
+        if entry is not None and chunks.text_sha256 == entry["text_sha256"]:
+            found.append((entry, chunks))
+    if not found:
+        pytest.skip("none of the cards' outside texts is on this machine")
+    return found
+
+
+def outside_entry(name: str, label: str) -> dict:
+    return next(e for e in codec(name).card["measured"]["outside"]["texts"] if e["label"] == label)
+
+
+def test_plain_reconstructs_prose_outside_its_corpus():
+    # common practice for chunk autoencoders with K = 4: > 99.9 % token accuracy at sigma 0; here on
+    # English prose the corpus does not hold (licence texts), measured again and matched with the card
+    for entry, chunks in outside_prose():
+        result = run_sweep(codec("plain"), chunks, SweepSettings(sigmas=(0.0,), repeats=1, noise="isotropic", seed=SWEEP_SEED))
+        accuracy = result.curves[0].token_accuracy
+        assert accuracy == pytest.approx(entry["token_accuracy_sigma0"], abs=0.5 / chunks.num_tokens), entry["label"]
+        assert accuracy > 0.999, entry["label"]
+
+
+def test_tolerant_takes_three_times_plains_data_scale_noise_on_outside_prose():
+    # the card's 99 % data-scale tolerance on each outside text, measured again on the two grid points
+    # around it (as held_out_data_scale_sweep does), and tolerant's at least 3x plain's there
+    for entry, chunks in outside_prose():
+        sigmas = {}
+        for name in ("plain", "tolerant"):
+            card_sigma = outside_entry(name, entry["label"])["tolerance_data_scale"]["0.99"]["sigma"]
+            below = max(s for s in DATA_SCALE_SIGMAS if s < card_sigma)
+            above = min(s for s in DATA_SCALE_SIGMAS if s > card_sigma)
+            settings = SweepSettings(sigmas=(below, above), repeats=SWEEP_REPEATS, noise="data-scale", seed=SWEEP_SEED)
+            tolerance = run_sweep(codec(name), chunks, settings).tolerance(0.99)
+            assert tolerance.status == "ok"
+            assert tolerance.sigma == pytest.approx(card_sigma, rel=1e-6), (name, entry["label"])
+            sigmas[name] = tolerance.sigma
+        assert sigmas["tolerant"] >= 3 * sigmas["plain"], entry["label"]

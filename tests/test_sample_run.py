@@ -71,13 +71,13 @@ def test_trend_measures_every_checkpoint_in_step_order():
 def test_accuracy_and_loss_tolerance_grow_through_training_on_the_slice():
     pts = points()
     first, last = pts[0], pts[-1]
-    # measured on this slice: 52.8 % at step 50, 99.0 % at the final step (the demo text is outside the
-    # training domain); the thresholds leave a margin
-    assert first.accuracy_at_zero < 0.7 and last.accuracy_at_zero > 0.98
+    # measured on this slice: 74.3 % at step 100, 100 % at the final step 12,800 (the demo text is outside
+    # the training domain); the thresholds leave a margin
+    assert first.accuracy_at_zero < 0.85 and last.accuracy_at_zero > 0.995
     assert all(b.accuracy_at_zero >= a.accuracy_at_zero - 0.005 for a, b in zip(pts, pts[1:]))
-    # the 1-point loss tolerance: 0.24 -> 0.55 measured (trend view); here on a coarser grid
+    # the 1-point loss tolerance: 0.157 -> 0.759 measured on this grid
     t0, t1 = first.tolerance(0.01, "loss"), last.tolerance(0.01, "loss")
-    assert t0.sigma is not None and t1.sigma is not None and t1.sigma > 1.5 * t0.sigma
+    assert t0.sigma is not None and t1.sigma is not None and t1.sigma > 3 * t0.sigma
 
 
 def test_kl_and_active_dims_match_their_definitions():
@@ -95,7 +95,7 @@ def test_kl_and_active_dims_match_their_definitions():
         assert point.kl == pytest.approx(float(ref), rel=1e-4)
         variance = np.var(mean.double().numpy(), axis=0)
         assert point.active_dims == int((variance > ACTIVE_THRESHOLD).sum())
-    assert 0 < pts[-1].kl < pts[0].kl  # the KL term pulls it down through training (measured 67 -> 51 nats)
+    assert 0 < pts[-1].kl < pts[0].kl  # the KL term pulls it down through training (measured 63 -> 49 nats on this slice)
 
 
 def test_details_rows_of_a_run_checkpoint_say_its_step_and_show_no_machine_path():
