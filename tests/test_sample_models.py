@@ -224,3 +224,16 @@ def test_tolerant_takes_three_times_plains_data_scale_noise_on_outside_prose():
             assert tolerance.sigma == pytest.approx(card_sigma, rel=1e-6), (name, entry["label"])
             sigmas[name] = tolerance.sigma
         assert sigmas["tolerant"] >= 3 * sigmas["plain"], entry["label"]
+
+
+def test_details_rows_show_outside_prose_without_its_machine_paths():
+    from core.codecs.summary import card_rows, codec_rows
+
+    c = codec("plain")
+    rows = dict(codec_rows(c))
+    labels = [t["label"] for t in c.card["measured"]["outside"]["texts"]]
+    assert all(label in rows["outside prose σ = 0"] for label in labels)
+    every = codec_rows(c) + card_rows(c.card, limit=10_000)
+    assert any(key.startswith("measured.outside.texts[0].") for key, _ in every)  # the list is flattened, not dumped
+    paths = [t["path"] for t in c.card["measured"]["outside"]["texts"]] + [c.card["corpus"]["stdlib_path"]]
+    assert not any(p in value for p in paths for _, value in every)
