@@ -353,14 +353,15 @@ def cmd_trend(args: argparse.Namespace) -> int:
         except OutputExistsError as exc:
             raise _already_exist([exc.path]) from None
     text, source = _load_text_arg(args.text)
-    from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, TOLERANCE_LEVELS, level_percent
+    from core.engine.tolerance import ABSOLUTE, LOSS, LOSS_LEVELS, STATUS_TEXT, TOLERANCE_LEVELS, level_percent
 
     announce_adapter(args.adapter, paths, where=where)
     points = []
     levels = [(ABSOLUTE, level) for level in TOLERANCE_LEVELS] + [(LOSS, level) for level in LOSS_LEVELS]
-    print(f"{'':<48}{'accuracy ≥':<34}loss ≤")
-    print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[:3])
-          + "  " + " ".join(f"{level_percent(lv, k):>10}" for k, lv in levels[3:])
+    width = max(10, *(len(text) for text in STATUS_TEXT.values()))  # a tolerance cell holds its longest word
+    print(f"{'':<48}{'accuracy ≥':<{3 * width + 4}}loss ≤")
+    print(f"{'checkpoint':<28} {'step':>8} {'acc@σ=0':>9} " + " ".join(f"{level_percent(lv, k):>{width}}" for k, lv in levels[:3])
+          + "  " + " ".join(f"{level_percent(lv, k):>{width}}" for k, lv in levels[3:])
           + f" {'lat. RMS':>9} {'KL nats':>9} {'active':>7}")
     for point in trend(args.folder, text, settings, text_source=source, adapter=args.adapter, where=where):
         points.append(point)
@@ -368,7 +369,7 @@ def cmd_trend(args: argparse.Namespace) -> int:
             print(f"{point.name[:28]:<28} {'' if point.step is None else point.step:>8} failed: {point.error}")
             continue
         tols = [point.tolerance(level, kind) for kind, level in levels]
-        cells = [f"{'—' if t is None else t.label():>10}" for t in tols]
+        cells = [f"{'—' if t is None else t.label():>{width}}" for t in tols]
         latent = (f" {'—' if point.latent_rms is None else f'{point.latent_rms:.4g}':>9}"
                   f" {'—' if point.kl is None else f'{point.kl:.4g}':>9}"
                   f" {'—' if point.active_dims is None else point.active_dims:>7}")
