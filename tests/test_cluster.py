@@ -166,6 +166,7 @@ def test_sharded_trend_equals_one_process(where, tmp_path):
     assert sorted(p.name for p in there) == ["step-100", "step-200"] and all(p.error is None for p in there)
     for p, q in zip(here, there):
         assert_same_sweep(p.result, q.result)
+        assert (p.kl, p.active_dims, p.latent_rms) == (q.kl, q.active_dims, q.latent_rms)  # measured while the workers sweep
 
 
 def test_an_adapter_raising_on_the_workers_is_one_sentence_and_nothing_is_written(where, text_file, tmp_path, capsys):
