@@ -48,7 +48,7 @@ import os
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -59,6 +59,9 @@ from core.engine.sweep import DEFAULT_REPEATS, DEFAULT_SEED, DEFAULT_SIGMAS, pro
 from core.engine.text import Chunks
 from core.errors import SettingsError, SweepCancelled
 from core.outputs.files import Outputs, result_folder
+
+if TYPE_CHECKING:
+    from core.engine.cluster import Where
 
 DEFAULT_CANDIDATES = 4
 DEFAULT_ITERATIONS = 6
@@ -518,7 +521,7 @@ def worst_case(
     should_stop: ShouldStop | None = None,
     encoded: Encoded | None = None,
     text_source: str = "",
-    where=None,
+    where: Where | None = None,
     adapter: str | None = None,
 ) -> WorstCaseResult:
     """The worst-case radius of every chunk of a text, beside its random radius (see the module).
