@@ -437,7 +437,8 @@ def cmd_report(args: argparse.Namespace) -> int:
             for codec in codecs:
                 chunks = chunk_text(text, codec, source)
                 progress = None if args.quiet else TerminalProgress(f"worst {codec.name[:10]:<10}")
-                extra.append(report_section(worst_case(codec, chunks, worst_settings, progress=progress, text_source=source)))
+                extra.append(report_section(worst_case(codec, chunks, worst_settings, progress=progress, text_source=source,
+                                                       where=where, adapter=args.adapter)))
         if len(codecs) >= 2:
             comparison = _comparison_from_args(args, codecs, text, source, None if args.quiet else TerminalProgress("compare"), where)
         else:
@@ -516,8 +517,9 @@ def cmd_worstcase(args: argparse.Namespace) -> int:
     if out.exists() and not out.is_dir():
         raise OutputRefusedError(f"{out} is a file, and worst-case results go into a folder; choose another --out.")
     _check_outputs([out], args.force, WORST_CASE_FOLDER, folder=True)
+    where = where_from_args(args)
     text, source = _load_text_arg(args.text)
-    (codec,) = open_checkpoints([args.checkpoint], args.adapter)
+    (codec,) = open_checkpoints([args.checkpoint], args.adapter, where)
     refuse_without_gradients(codec)
     chunks = chunk_text(text, codec, source)
     progress = None if args.quiet else TerminalProgress(f"{codec.name[:16]:<16}")
@@ -529,7 +531,8 @@ def cmd_worstcase(args: argparse.Namespace) -> int:
         predictions = read_predictions(args.predictions)
         check_against(predictions, codec)
         encoded = encode_chunks(codec, chunks)
-    result = worst_case(codec, chunks, settings, progress=progress, text_source=source, encoded=encoded)
+    result = worst_case(codec, chunks, settings, progress=progress, text_source=source, encoded=encoded, where=where,
+                        adapter=args.adapter)
     if predictions is not None:
         from core.analyses.worstcase import against_generator
 
@@ -688,8 +691,9 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Per chunk, search for the smallest perturbation of its mean that changes the decoded "
                                    "chunk (following gradients through the decoder; not for ONNX codecs), verify it, and set "
                                    "it beside the noise norm at which a data-scale sweep with the same seed first breaks the "
-                                   "chunk; write DIR/worst_case.json and DIR/worst_case.csv. Runs in this process (no --workers): "
-                                   "the gradient search and the random-radius sweep are not sharded.")
+                                   "chunk; write DIR/worst_case.json and DIR/worst_case.csv. With --workers or --cluster the "
+                                   "chunks are sharded (whole search batches per shard, the same seeds per chunk), and the "
+                                   "result is the one of this process.")
     p.add_argument("checkpoint")
     p.add_argument("--adapter", metavar="SPEC", help=ADAPTER_HELP)
     p.add_argument("--text", help="UTF-8 text file to evaluate on (default: the bundled demo text)")
@@ -701,6 +705,7 @@ def build_parser() -> argparse.ArgumentParser:
                    "each chunk's generator error norm and the share of chunks whose worst-case radius is below it")
     p.add_argument("--force", action="store_true", help="replace an existing output folder")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    add_cluster_arguments(p)
     p.set_defaults(func=cmd_worstcase)
 
     p = sub.add_parser("predictions", help="hold a generator's predicted latents against the decoder's tolerance",

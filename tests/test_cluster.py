@@ -166,6 +166,7 @@ def test_sharded_trend_equals_one_process(where, tmp_path):
     assert sorted(p.name for p in there) == ["step-100", "step-200"] and all(p.error is None for p in there)
     for p, q in zip(here, there):
         assert_same_sweep(p.result, q.result)
+        assert (p.kl, p.active_dims, p.latent_rms) == (q.kl, q.active_dims, q.latent_rms)  # measured while the workers sweep
 
 
 def test_an_adapter_raising_on_the_workers_is_one_sentence_and_nothing_is_written(where, text_file, tmp_path, capsys):
@@ -353,3 +354,56 @@ def test_report_takes_cluster_and_writes_its_page(where, text_file, tmp_path, ca
     assert main(["report", str(PLAIN), "--text", str(text_file), "--out", str(out), "--cluster", where.address] + ARGS) == 0
     assert "sharding the work over the Dask scheduler" in capsys.readouterr().err
     assert out.read_text(encoding="utf-8").lstrip().lower().startswith("<!doctype html")
+
+
+def test_the_planning_pass_is_sharded_and_its_plan_is_the_one_process_plan(where):
+    """Data-scale noise needs the whole text's r before any shard: the workers measure it in
+    ENCODE_BATCH-aligned pieces and the client adds them in order, so r (hence every perturbation)
+    is the one-process plan's bit for bit. Reference: plan_sweep and run_sweep in this process."""
+    from core.engine.noise import ENCODE_BATCH
+    from core.engine.sweep import plan_sweep
+
+    codec = open_checkpoint(PLAIN)
+    long_text = DEMO_TEXT_PATH.read_text(encoding="utf-8")
+    chunks = chunk_text((long_text + "\n") * 7, codec, "t")
+    assert chunks.num_chunks > 2 * ENCODE_BATCH  # at least three planning pieces
+    settings = SweepSettings(sigmas=(0.0, 0.5), repeats=1, noise="data-scale")
+    (sharded,) = run_sweeps([SweepJob(codec, chunks, settings)], where)
+    assert sharded.provenance["ran_on"]["planning_shards"] >= 2
+    plan = plan_sweep(codec, chunks, settings)
+    assert sharded.latent_rms == plan.latent_rms  # exactly: the same blocks added in the same order
+    whole = run_sweep(codec, chunks, settings)
+    np.testing.assert_array_equal(sharded.wrong_counts, whole.wrong_counts)
+    np.testing.assert_array_equal(sharded.decoded, whole.decoded)
+    assert [c.correct for c in sharded.curves] == [c.correct for c in whole.curves]
+
+
+def test_a_sharded_worst_case_equals_the_one_process_worst_case(where):
+    """Reference: worst_case in this process (itself checked against DeepFool's closed form for a
+    linear decoder in test_core_worstcase.py). The shards are whole search batches with the same
+    seeds per chunk, so counts (decoder calls, flipped positions and tokens) are identical and radii
+    agree to float rounding."""
+    from core.analyses.worstcase import WorstCaseSettings, worst_case
+
+    codec = open_checkpoint(TOLERANT)
+    chunks = chunk_text(TEXT, codec, "t")
+    settings = WorstCaseSettings(seed=5, sigmas=(0.3, 1.0, 3.0), repeats=2, candidates=2, iterations=3, batch_chunks=128)
+    here = worst_case(codec, chunks, settings, text_source="t")
+    there = worst_case(codec, chunks, settings, text_source="t", where=where)
+    assert there.provenance["ran_on"]["shards"] >= 3 and there.provenance["ran_on"]["where"] == where.label()
+    for name in ("position", "from_id", "to_id", "forward_calls", "backward_calls"):
+        np.testing.assert_array_equal(getattr(there, name), getattr(here, name), err_msg=name)
+    assert there.random_calls == here.random_calls and here.verified.sum() > 0
+    for name in ("radius", "relative_radius", "random_radius", "random_relative_radius", "random_sigma", "perturbation"):
+        np.testing.assert_allclose(getattr(there, name), getattr(here, name), rtol=1e-6, atol=1e-9, err_msg=name)
+    assert there.latent_rms == here.latent_rms  # r from the sharded planning pass, bit for bit
+    assert there.token_text == here.token_text
+
+
+def test_without_distributed_worstcase_workers_says_what_to_install(monkeypatch, tmp_path, capsys):
+    monkeypatch.setitem(sys.modules, "distributed", None)  # `import distributed` now raises ImportError
+    out = tmp_path / "out"
+    assert main(["worstcase", str(TOLERANT), "--workers", "2", "--out", str(out), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err == "chunkscope: running on a cluster needs Dask's distributed package: pip install chunkscope[cluster]."
+    assert not out.exists()

@@ -151,3 +151,41 @@ def test_a_shard_of_another_plan_is_refused_not_cut_short(lookup):
     shards[1] = sweep_shard(lookup, chunks, wider, NOISE_BLOCK, 2 * NOISE_BLOCK)
     with pytest.raises(ChunkscopeError, match="was not swept by this plan"):
         merge_shards(plan, shards, chunks, lookup)
+
+
+def _same_plan(a, b):
+    """Every field of two SweepPlans equal; arrays bit for bit."""
+    for name in a.__dataclass_fields__:
+        x, y = getattr(a, name), getattr(b, name)
+        if isinstance(x, np.ndarray) or isinstance(y, np.ndarray):
+            assert x.dtype == y.dtype and np.array_equal(x, y), name
+        else:
+            assert x == y, name
+
+
+def test_a_planning_pass_cut_into_block_ranges_gives_plan_sweeps_plan_exactly(lookup):
+    """The cluster's sharded planning pass: scale_parts over ENCODE_BATCH-aligned ranges, summed in
+    order, is plan_sweep's own measurement, so every shard perturbs with the same r. Reference:
+    plan_sweep on the whole text; exact because each block is encoded alike and added in the same order
+    (floating-point addition is not associative, so the order is the whole point; common practice)."""
+    from core.engine.noise import ENCODE_BATCH, LatentScale, scale_parts
+    from core.engine.sweep import chunk_ranges
+
+    chunks = chunk_text(TEXT * 14, lookup)
+    n, k = chunks.num_chunks, chunks.chunk_size
+    assert n > 2 * ENCODE_BATCH and n % ENCODE_BATCH  # three blocks, the last ragged
+    settings = SweepSettings(sigmas=GRID, repeats=2, noise="data-scale")
+    whole = plan_sweep(lookup, chunks, settings)
+    for parts in (1, 2, 3, 7):
+        ranges = chunk_ranges(n, ENCODE_BATCH, parts)
+        assert ranges[0][0] == 0 and ranges[-1][1] == n and all(a % ENCODE_BATCH == 0 for a, _ in ranges)
+        measured = {a: scale_parts(lookup, chunks.token_ids[a * k : b * k], chunks.pad_id, a, b) for a, b in ranges[::-1]}
+        scale = LatentScale.of_parts([p for a in sorted(measured) for p in measured[a]], n)
+        _same_plan(plan_sweep(lookup, chunks, settings, scale=scale), whole)
+    # and the reference itself: r is the RMS of the encoder means over all chunks (DESIGN.md's data scale)
+    mean = lookup.encode(chunks.ids())[0].double()
+    np.testing.assert_allclose(whole.data_scale, mean.square().mean(0).sqrt().numpy(), rtol=1e-6)
+    with pytest.raises(SettingsError, match="multiple of 4096"):
+        scale_parts(lookup, chunks.token_ids, chunks.pad_id, 100, 200)
+    with pytest.raises(SettingsError, match="measured over"):
+        plan_sweep(lookup, chunks, settings, scale=LatentScale(np.ones(lookup.latent_dim), n - 1))

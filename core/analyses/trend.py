@@ -178,7 +178,7 @@ def _trend_on_cluster(paths, text, settings, text_source, should_stop, progress,
     from core.engine.cluster import SweepJob, sweeps_as_completed
     from core.codecs.open import uses_adapter
 
-    jobs, about, stats = [], [], []
+    jobs, about = [], []
     for _, path, opened in _opened_points(paths, adapter, should_stop):
         if isinstance(opened, TrendPoint):
             yield opened
@@ -192,10 +192,13 @@ def _trend_on_cluster(paths, text, settings, text_source, should_stop, progress,
             continue
         jobs.append(SweepJob(codec, chunks, checked, text_source, adapter=adapter if adapter and uses_adapter(path) else None))
         about.append((path, codec, step, source))
-        stats.append(latent_stats(codec, chunks))  # on the client: one encoding pass, as the plan's
     for i, result in sweeps_as_completed(jobs, where, progress, should_stop):
-        jobs[i] = None  # the client keeps the point, not the codec
-        yield _point_of(*about[i], result, *stats[i])
+        # KL and active dimensions: one encoding pass on the client, done while the workers sweep the
+        # other checkpoints (before any sweep, it held the whole cluster up by one pass per checkpoint)
+        stats = latent_stats(jobs[i].codec, jobs[i].chunks)
+        point = _point_of(*about[i], result, *stats)
+        jobs[i] = about[i] = None  # the client keeps the point, not the codec
+        yield point
 
 
 def sort_points(points: list[TrendPoint]) -> list[TrendPoint]:

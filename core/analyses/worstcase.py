@@ -48,7 +48,7 @@ import os
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -59,6 +59,9 @@ from core.engine.sweep import DEFAULT_REPEATS, DEFAULT_SEED, DEFAULT_SIGMAS, pro
 from core.engine.text import Chunks
 from core.errors import SettingsError, SweepCancelled
 from core.outputs.files import Outputs, result_folder
+
+if TYPE_CHECKING:
+    from core.engine.cluster import Where
 
 DEFAULT_CANDIDATES = 4
 DEFAULT_ITERATIONS = 6
@@ -407,11 +410,12 @@ class _Search:
 
 
 def random_radii(codec, encoded: Encoded, ref: "torch.Tensor", mask: "torch.Tensor", start: int, stop: int,
-                 settings: WorstCaseSettings, should_stop: ShouldStop | None = None):
-    """Per chunk start..stop: (random_radius, random_relative_radius, random_sigma, latents decoded), see the module."""
+                 settings: WorstCaseSettings, should_stop: ShouldStop | None = None, first: int = 0):
+    """Per chunk start..stop: (random_radius, random_relative_radius, random_sigma, latents decoded), see the module.
+    Row 0 of `encoded` is chunk `first` of the text (a shard's own latents; ε is drawn for the text's chunks)."""
     n = stop - start
     scale = encoded.rms_per_dim.unsqueeze(0)
-    mean = encoded.mean[start:stop]
+    mean = encoded.mean[start - first : stop - first]
     best_abs, best_rel, best_sigma = _nan(n), _nan(n), _nan(n)
     decoded = 0
     sigmas = [s for s in settings.sigmas if s > 0]
@@ -438,6 +442,77 @@ def random_radii(codec, encoded: Encoded, ref: "torch.Tensor", mask: "torch.Tens
     return best_abs, best_rel, best_sigma, decoded
 
 
+PIECE_FLOATS = ("radius", "relative_radius", "random_radius", "random_relative_radius", "random_sigma")
+PIECE_INTS = ("position", "from_id", "to_id", "forward_calls", "backward_calls")
+
+
+@dataclass
+class WorstCasePiece:
+    """Chunks start..stop searched: NumPy only, picklable (a cluster's shard); `assemble` joins pieces."""
+
+    start: int
+    stop: int
+    arrays: dict[str, np.ndarray]  # PIECE_FLOATS, PIECE_INTS and "perturbation" [n, D], rows of chunks start..stop
+    random_calls: int
+
+
+def worst_case_piece(codec, mean: "torch.Tensor", mask: "torch.Tensor", data_scale: "torch.Tensor", start: int, stop: int,
+                     settings: WorstCaseSettings, should_stop: ShouldStop | None = None,
+                     progress: Progress | None = None) -> WorstCasePiece:
+    """Search chunks start..stop, whose means and masks are `mean`, `mask` (rows start..stop); `data_scale` is the
+    whole text's r. Batches lie on the text's grid of `batch_chunks` (start must be on it), so a piece is
+    searched exactly as the same chunks are in one whole-text run, and pieces join into that run's result."""
+    if start % settings.batch_chunks:
+        raise SettingsError(f"a worst-case piece must start at a multiple of {settings.batch_chunks} chunks, not {start}.")
+    n, dim = stop - start, mean.shape[1]
+    encoded = Encoded(mean, None, data_scale=data_scale)
+    search = _Search(codec, settings, should_stop)
+    arrays = {key: _nan(n) for key in PIECE_FLOATS}
+    arrays.update({key: np.zeros(n, dtype=np.int64) for key in PIECE_INTS})
+    arrays["perturbation"] = np.zeros((n, dim), dtype=np.float32)
+    random_calls = 0
+    for a in range(start, stop, settings.batch_chunks):
+        b = min(a + settings.batch_chunks, stop)
+        rows = slice(a - start, b - start)
+        batch_mean, batch_mask = mean[rows].float(), mask[rows]
+        ref, (d, verified, position, from_id, to_id, forward, backward) = search.run(batch_mean, batch_mask)
+        d_np = d.numpy()
+        relative = torch.where(d == 0, torch.zeros_like(d), d / data_scale.unsqueeze(0)).norm(dim=1).numpy()
+        arrays["radius"][rows] = np.where(verified, np.linalg.norm(d_np.astype(np.float64), axis=1), np.nan)
+        arrays["relative_radius"][rows] = np.where(verified, relative, np.nan)
+        arrays["perturbation"][rows] = d_np
+        arrays["position"][rows] = position
+        arrays["from_id"][rows] = from_id
+        arrays["to_id"][rows] = to_id
+        arrays["forward_calls"][rows] += forward
+        arrays["backward_calls"][rows] += backward
+        ra, rr, rs, calls = random_radii(codec, encoded, ref, batch_mask, a, b, settings, should_stop, first=start)
+        arrays["random_radius"][rows], arrays["random_relative_radius"][rows], arrays["random_sigma"][rows] = ra, rr, rs
+        random_calls += calls
+        if progress is not None:
+            progress(b - start, n)
+    return WorstCasePiece(start, stop, arrays, random_calls)
+
+
+def assemble(codec, chunks: Chunks, settings: WorstCaseSettings, pieces: list[WorstCasePiece], latent_rms: float,
+             elapsed: float, text_source: str = "") -> WorstCaseResult:
+    """The WorstCaseResult of pieces covering the text's chunks once (in any order)."""
+    codec = opened(codec)
+    pieces = sorted(pieces, key=lambda piece: piece.start)
+    if [p.start for p in pieces] != [0] + [p.stop for p in pieces[:-1]] or pieces[-1].stop != chunks.num_chunks:
+        raise SettingsError(f"the worst-case pieces of {codec.name} do not cover chunks 0..{chunks.num_chunks} exactly once.")
+    joined = {key: np.concatenate([p.arrays[key] for p in pieces]) for key in pieces[0].arrays}
+    prov = provenance(codec, chunks, settings, text_source)
+    prov["analysis"] = "worst case"
+    prov["elapsed_s"] = elapsed
+    used = joined["from_id"][joined["from_id"] >= 0], joined["to_id"][joined["to_id"] >= 0]
+    return WorstCaseResult(
+        settings=settings, provenance=prov, chunks=chunks, random_calls=sum(p.random_calls for p in pieces),
+        latent_rms=latent_rms, elapsed_s=elapsed, token_text=token_texts(codec.tokenizer, *used, vocab_size=codec.vocab_size),
+        **joined,
+    )
+
+
 def worst_case(
     codec,
     chunks: Chunks,
@@ -446,56 +521,29 @@ def worst_case(
     should_stop: ShouldStop | None = None,
     encoded: Encoded | None = None,
     text_source: str = "",
+    where: Where | None = None,
+    adapter: str | None = None,
 ) -> WorstCaseResult:
     """The worst-case radius of every chunk of a text, beside its random radius (see the module).
 
-    Raises GradientsUnavailable for a codec without gradients, SweepCancelled when stopped."""
+    `where` (core.engine.cluster.Where) shards the chunks over a Dask cluster; the result is the one of
+    this process. Raises GradientsUnavailable for a codec without gradients, SweepCancelled when stopped."""
     codec = opened(codec)
     refuse_without_gradients(codec)
     settings = settings.validated()
     if chunks.chunk_size != codec.chunk_size:
         raise SettingsError(f"the text was cut into chunks of {chunks.chunk_size}, but {codec.name} takes {codec.chunk_size}.")
+    if where is not None and not where.here:
+        from core.engine.cluster import run_worst_case
+
+        return run_worst_case(codec, chunks, settings, where, adapter=adapter, progress=progress, should_stop=should_stop,
+                              encoded=encoded, text_source=text_source)
     started = time.perf_counter()
     if encoded is None:
         encoded = encode_chunks(codec, chunks, should_stop=should_stop)
-    n, dim = encoded.num_chunks, codec.latent_dim
-    rms = encoded.rms_per_dim
-    search = _Search(codec, settings, should_stop)
-    out = {key: _nan(n) for key in ("radius", "relative_radius", "random_radius", "random_relative_radius", "random_sigma")}
-    ints = {key: np.zeros(n, dtype=np.int64) for key in ("position", "from_id", "to_id", "forward_calls", "backward_calls")}
-    perturbation = np.zeros((n, dim), dtype=np.float32)
-    random_calls = 0
-    batch = settings.batch_chunks
-    for start in range(0, n, batch):
-        stop = min(start + batch, n)
-        mean = encoded.mean[start:stop].float()
-        mask = chunks.mask(start, stop)
-        ref, (d, verified, position, from_id, to_id, forward, backward) = search.run(mean, mask)
-        d_np = d.numpy()
-        relative = torch.where(d == 0, torch.zeros_like(d), d / rms.unsqueeze(0)).norm(dim=1).numpy()
-        out["radius"][start:stop] = np.where(verified, np.linalg.norm(d_np.astype(np.float64), axis=1), np.nan)
-        out["relative_radius"][start:stop] = np.where(verified, relative, np.nan)
-        perturbation[start:stop] = d_np
-        ints["position"][start:stop] = position
-        ints["from_id"][start:stop] = from_id
-        ints["to_id"][start:stop] = to_id
-        ints["forward_calls"][start:stop] += forward
-        ints["backward_calls"][start:stop] += backward
-        ra, rr, rs, calls = random_radii(codec, encoded, ref, mask, start, stop, settings, should_stop)
-        out["random_radius"][start:stop], out["random_relative_radius"][start:stop], out["random_sigma"][start:stop] = ra, rr, rs
-        random_calls += calls
-        if progress is not None:
-            progress(stop, n)
-    elapsed = time.perf_counter() - started
-    prov = provenance(codec, chunks, settings, text_source)
-    prov["analysis"] = "worst case"
-    prov["elapsed_s"] = elapsed
-    used = ints["from_id"][ints["from_id"] >= 0], ints["to_id"][ints["to_id"] >= 0]
-    return WorstCaseResult(
-        settings=settings, provenance=prov, chunks=chunks, perturbation=perturbation, random_calls=random_calls,
-        latent_rms=encoded.latent_rms, elapsed_s=elapsed,
-        token_text=token_texts(codec.tokenizer, *used, vocab_size=codec.vocab_size), **out, **ints,
-    )
+    piece = worst_case_piece(codec, encoded.mean, chunks.mask(), encoded.rms_per_dim, 0, encoded.num_chunks, settings,
+                             should_stop, progress)
+    return assemble(codec, chunks, settings, [piece], encoded.latent_rms, time.perf_counter() - started, text_source)
 
 
 # ---- view-shaped numbers (the workbench and the report draw these) -----------------------------

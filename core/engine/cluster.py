@@ -1,8 +1,11 @@
 """Where heavy work runs: this process, a local Dask cluster of N processes, or a running scheduler.
 
 A sweep is cut into shards (`plan_sweep` / `sweep_shard` / `merge_shards` in core.engine.sweep).
-The client plans each sweep, submits its shards as tasks, and folds the shards into one
-result as they finish, so it holds no more than the merged result. A task carries a
+When its plan needs the text's latent scale (data-scale noise), the encoding pass that measures
+it runs as tasks first (`scale_parts` per ENCODE_BATCH block; the client adds the parts in block
+order, so the plan is plan_sweep's exactly). The client then plans the sweep, submits its shards
+as tasks, and folds the shards into one result as they finish, so it holds no more than the
+merged result. `run_worst_case` shards worstcase the same way. A task carries a
 ticket, not a codec: the checkpoint's path and sha256, and an adapter's file (its bytes).
 The worker opens the codec itself (once per process, kept in a small cache), checks the
 sha256 and sweeps its range. Dask's `retries=` recompute a shard whose worker died or
@@ -243,6 +246,17 @@ def _shard_task(ticket: CodecTicket, plan, ids: np.ndarray, start: int, stop: in
     return sweep_shard(codec, ids, plan, start, stop)
 
 
+def _scale_task(ticket: CodecTicket, ids: np.ndarray, pad_id: int, start: int, stop: int) -> list:
+    """One task of a sharded planning pass: Σ mean² per ENCODE_BATCH block of chunks start..stop."""
+    from core.deferred import inference_mode, torch
+    from core.engine.noise import scale_parts
+
+    if torch.get_num_threads() != 1:
+        torch.set_num_threads(1)
+    codec = open_on_worker(ticket)
+    return inference_mode(scale_parts)(codec, ids, pad_id, start, stop)
+
+
 # ---- the client's side ----------------------------------------------------------------------------
 
 
@@ -357,8 +371,60 @@ def _cause(exc: BaseException) -> str:
     return f"{name}: {text[-1]}" if text else name
 
 
+def _finished(task_of: dict, pending: set, where: Where, name_of: Callable[[int], str], stopped) -> Iterator[tuple[tuple, Any]]:
+    """(task info, value) of each task as it finishes; `pending` may grow between yields. A task that
+    failed on every try is one sentence naming its checkpoint (`name_of(job index)`) and chunk range."""
+    while pending:
+        if stopped():
+            raise SweepCancelled()
+        finished = [f for f in pending if f.done()]
+        if not finished:
+            time.sleep(0.02)
+            continue
+        for future in finished:
+            pending.discard(future)
+            info = task_of.pop(future)
+            _, i, a, b = info
+            if future.status != "finished":
+                exc = future.exception() if future.status == "error" else None
+                cause = _cause(exc) if exc is not None else "it was cancelled on the cluster"
+                tries = where.retries + 1
+                raise ClusterError(f"{name_of(i)}: the shard of chunks {a}..{b} failed on every try "
+                                   f"on the cluster ({tries} tr{'ies' if tries != 1 else 'y'}): {cause}.")
+            value = future.result()
+            future.release()
+            yield info, value
+
+
+def _submitter(client, where: Where, task_of: dict, pending: set):
+    def submit(kind: str, i: int, a: int, b: int, fn, *args) -> None:
+        """Job i's tasks run before job i+1's, and a job's shards before the next job's planning pass."""
+        future = client.submit(fn, *args, retries=where.retries, pure=False, priority=-2 * i + (kind != "scale"),
+                               key=f"chunkscope-{kind}-{i}-{a}-{b}-{os.urandom(4).hex()}")
+        task_of[future] = (kind, i, a, b)
+        pending.add(future)
+    return submit
+
+
+def _submit_scale(submit, i: int, ticket: CodecTicket, chunks, parts: int) -> int:
+    """Job i's planning pass as ENCODE_BATCH-aligned tasks; how many."""
+    from core.engine.noise import ENCODE_BATCH
+    from core.engine.sweep import chunk_ranges
+
+    k, ranges = chunks.chunk_size, chunk_ranges(chunks.num_chunks, ENCODE_BATCH, parts)
+    for a, b in ranges:
+        ids = np.ascontiguousarray(chunks.token_ids[a * k : min(b * k, chunks.num_tokens)])
+        submit("scale", i, a, b, _scale_task, ticket, ids, chunks.pad_id, a, b)
+    return len(ranges)
+
+
 def _run_on_cluster(jobs, where: Where, progress, should_stop, on_start) -> Iterator[tuple[int, Any]]:
-    from core.engine.sweep import plan_sweep
+    """Two kinds of task, both sharded: a job whose plan needs the text's latent scale first has its
+    planning pass cut into ENCODE_BATCH-aligned ranges (scale_parts); once they are all in, the client
+    plans it (parts summed in order: the one-process plan exactly) and submits its sweep shards.
+    Priorities keep the jobs in order: job i's tasks run before job i+1's, so folds finish one by one."""
+    from core.engine.noise import LatentScale
+    from core.engine.sweep import chunk_ranges, plan_needs_scale, plan_sweep
 
     stopped = should_stop or (lambda: False)
     started = time.perf_counter()
@@ -367,55 +433,144 @@ def _run_on_cluster(jobs, where: Where, progress, should_stop, on_start) -> Iter
             on_start(client)
         threads = max(1, sum(client.nthreads().values()))
         per_job = max(1, math.ceil(SHARDS_PER_THREAD * threads / max(len(jobs), 1)))
-        task_of: dict = {}  # future -> (job index, start, stop)
-        folds: list = []
+        task_of: dict = {}  # future -> (kind, job index, start, stop)
+        folds: list = [None] * len(jobs)
+        parts: list = [None] * len(jobs)  # job -> {start: the range's scale parts}, while its planning pass runs
+        tickets, total, pending = [], 0, set()
+        scale_tasks = [0] * len(jobs)
+        submit = _submitter(client, where, task_of, pending)
+
+        def submit_shards(i: int, plan) -> None:
+            job, k = jobs[i], plan.chunk_size
+            ranges = plan.shard_ranges(per_job)
+            folds[i] = _Fold(plan, ranges)
+            for a, b in ranges:
+                ids = np.ascontiguousarray(job.chunks.token_ids[a * k : min(b * k, plan.n_tokens)])
+                submit("shard", i, a, b, _shard_task, tickets[i], plan, ids, a, b)
+
         try:
             for i, job in enumerate(jobs):
                 if stopped():
                     raise SweepCancelled()
-                plan = plan_sweep(job.codec, job.chunks, job.settings, encoded=job.encoded, should_stop=should_stop)
-                ticket = codec_ticket(job.codec, job.adapter)
-                ranges = plan.shard_ranges(per_job)
-                folds.append(_Fold(plan, ranges))
-                k, n_tokens = plan.chunk_size, plan.n_tokens
-                for a, b in ranges:
-                    ids = np.ascontiguousarray(job.chunks.token_ids[a * k : min(b * k, n_tokens)])
-                    future = client.submit(_shard_task, ticket, plan, ids, a, b, retries=where.retries, pure=False,
-                                           key=f"chunkscope-shard-{i}-{a}-{b}-{os.urandom(4).hex()}")
-                    task_of[future] = (i, a, b)
-            total, done = len(task_of), 0
-            pending = set(task_of)
+                tickets.append(codec_ticket(job.codec, job.adapter))
+                n = job.chunks.num_chunks
+                batch = job.settings.validated(job.codec).batch_chunks
+                total += len(chunk_ranges(n, batch, per_job))
+                if plan_needs_scale(job.codec, job.chunks, job.settings, job.encoded) and n:
+                    parts[i] = {}
+                    scale_tasks[i] = _submit_scale(submit, i, tickets[i], job.chunks, per_job)
+                    total += scale_tasks[i]
+                else:
+                    submit_shards(i, plan_sweep(job.codec, job.chunks, job.settings, encoded=job.encoded))
+            done = 0
             if progress is not None:
                 progress(0, total)
-            while pending:
-                if stopped():
-                    raise SweepCancelled()
-                finished = [f for f in pending if f.done()]
-                if not finished:
-                    time.sleep(0.05)
-                    continue
-                for future in finished:
-                    pending.discard(future)
-                    i, a, b = task_of.pop(future)
-                    job = jobs[i]
-                    if future.status != "finished":
-                        exc = future.exception() if future.status == "error" else None
-                        cause = _cause(exc) if exc is not None else "it was cancelled on the cluster"
-                        tries = where.retries + 1
-                        raise ClusterError(
-                            f"{job.codec.path or job.codec.name}: the shard of chunks {a}..{b} failed on every try "
-                            f"on the cluster ({tries} tr{'ies' if tries != 1 else 'y'}): {cause}."
-                        )
-                    shard = future.result()
-                    future.release()
+            for (kind, i, a, b), value in _finished(task_of, pending, where, lambda i: jobs[i].codec.path or jobs[i].codec.name,
+                                                    stopped):
+                job = jobs[i]
+                done += 1
+                if kind == "scale":
+                    parts[i][a] = value
+                    if len(parts[i]) == scale_tasks[i]:
+                        ordered = [part for start in sorted(parts[i]) for part in parts[i][start]]
+                        parts[i] = None
+                        scale = LatentScale.of_parts(ordered, job.chunks.num_chunks)
+                        submit_shards(i, plan_sweep(job.codec, job.chunks, job.settings, scale=scale))
+                if progress is not None:
+                    progress(done, total)
+                if kind == "shard":
                     fold = folds[i]
-                    fold.add(shard)
-                    done += 1
-                    if progress is not None:
-                        progress(done, total)
+                    fold.add(value)
                     if fold.complete:
                         folds[i] = None
-                        yield i, fold.finish(job, time.perf_counter() - started, {"where": where.label(), "shards": fold.shards})
+                        yield i, fold.finish(job, time.perf_counter() - started, {
+                            "where": where.label(), "shards": fold.shards, "planning_shards": scale_tasks[i]})
         finally:
             if task_of:
                 client.cancel(list(task_of), force=True)
+
+
+# ---- the worst case, sharded ----------------------------------------------------------------------
+
+
+def _worst_case_task(ticket: CodecTicket, ids: np.ndarray, n_tokens: int, pad_id: int, first: int, start: int, stop: int,
+                     data_scale: np.ndarray, settings):
+    """One worst-case shard: encode the ENCODE_BATCH blocks holding chunks start..stop as the whole-text
+    encode does (`ids` are those blocks' token ids, from chunk `first`), then search start..stop."""
+    from core.analyses.worstcase import worst_case_piece
+    from core.deferred import torch
+    from core.engine.noise import ENCODE_BATCH
+
+    if torch.get_num_threads() != 1:
+        torch.set_num_threads(1)
+    codec = open_on_worker(ticket)
+    k = codec.chunk_size
+    last = min(-(-stop // ENCODE_BATCH) * ENCODE_BATCH, -(-n_tokens // k))
+    means = []
+    for a in range(first, last, ENCODE_BATCH):
+        b = min(a + ENCODE_BATCH, last)
+        flat = ids[(a - first) * k : (b - first) * k]
+        block = np.full((b - a) * k, pad_id, dtype=np.int64)
+        block[: len(flat)] = flat
+        means.append(codec.encode(torch.from_numpy(block.reshape(b - a, k)))[0].float())
+    mean = torch.cat(means)[start - first : stop - first]
+    mask = torch.from_numpy((np.arange(start * k, stop * k) < n_tokens).reshape(stop - start, k))
+    return worst_case_piece(codec, mean, mask, torch.from_numpy(data_scale), start, stop, settings)
+
+
+def run_worst_case(codec, chunks, settings, where: Where, adapter: str | None = None, progress: Progress | None = None,
+                   should_stop: Callable[[], bool] | None = None, encoded=None, text_source: str = ""):
+    """worst_case sharded over a cluster: the text's r measured in ENCODE_BATCH-aligned pieces (as a sweep's
+    plan), then the chunks in ranges of whole `batch_chunks` batches; pieces join into the one-process result."""
+    from core.analyses.worstcase import assemble
+    from core.engine.noise import ENCODE_BATCH, LatentScale
+    from core.engine.sweep import chunk_ranges
+
+    where = where.validated()
+    stopped = should_stop or (lambda: False)
+    started = time.perf_counter()
+    n, k = chunks.num_chunks, chunks.chunk_size
+    name = codec.path or codec.name
+    with cluster_client(where) as client:
+        threads = max(1, sum(client.nthreads().values()))
+        ticket = codec_ticket(codec, adapter)
+        task_of: dict = {}
+        pending: set = set()
+        submit = _submitter(client, where, task_of, pending)
+        ranges = chunk_ranges(n, settings.batch_chunks, SHARDS_PER_THREAD * threads)
+        try:
+            if encoded is not None:
+                scale, planning = encoded.scale, 0
+            else:
+                planning = _submit_scale(submit, 0, ticket, chunks, SHARDS_PER_THREAD * threads)
+            total, done, parts, pieces = planning + len(ranges), 0, {}, []
+            if progress is not None:
+                progress(0, total)
+
+            def submit_pieces(data_scale: np.ndarray) -> None:
+                for a, b in ranges:
+                    first = a - a % ENCODE_BATCH
+                    last = min(-(-b // ENCODE_BATCH) * ENCODE_BATCH, n)
+                    ids = np.ascontiguousarray(chunks.token_ids[first * k : min(last * k, chunks.num_tokens)])
+                    submit("worst", 0, a, b, _worst_case_task, ticket, ids, chunks.num_tokens, chunks.pad_id, first, a, b,
+                           data_scale, settings)
+
+            if encoded is not None:
+                submit_pieces(encoded.rms_per_dim.numpy())
+            for (kind, _, a, _), value in _finished(task_of, pending, where, lambda i: name, stopped):
+                done += 1
+                if kind == "scale":
+                    parts[a] = value
+                    if len(parts) == planning:
+                        scale = LatentScale.of_parts([part for start in sorted(parts) for part in parts[start]], n)
+                        submit_pieces(scale.rms_per_dim.numpy())
+                else:
+                    pieces.append(value)
+                if progress is not None:
+                    progress(done, total)
+        finally:
+            if task_of:
+                client.cancel(list(task_of), force=True)
+    result = assemble(codec, chunks, settings, pieces, scale.latent_rms, time.perf_counter() - started, text_source)
+    result.provenance["ran_on"] = {"where": where.label(), "shards": len(ranges), "planning_shards": planning}
+    return result

@@ -45,6 +45,14 @@ class LatentScale:
     def latent_rms(self) -> float:
         return float(math.sqrt(self.sumsq.sum() / max(self.chunks * len(self.sumsq), 1)))
 
+    @staticmethod
+    def of_parts(parts: "list[np.ndarray]", chunks: int) -> "LatentScale":
+        """The scale of consecutive blocks' Σ mean² (scale_parts), added in order as measure_scale adds them."""
+        sumsq = None
+        for part in parts:
+            sumsq = part if sumsq is None else sumsq + part
+        return LatentScale(sumsq, chunks)
+
     def merge(self, other: "LatentScale") -> "LatentScale":
         return LatentScale(self.sumsq + other.sumsq, self.chunks + other.chunks)
 
@@ -105,18 +113,39 @@ def encode_chunks(
 
 def measure_scale(codec, chunks, progress: Progress | None = None, should_stop: ShouldStop | None = None) -> LatentScale:
     """The text's LatentScale, encoding it block by block and keeping no latent."""
-    codec = opened(codec)
     n = chunks.num_chunks
-    sumsq = None
-    for start in range(0, n, ENCODE_BATCH):
+    parts = scale_parts(codec, chunks.token_ids, chunks.pad_id, 0, n, progress=progress, should_stop=should_stop)
+    return LatentScale.of_parts(parts, n)
+
+
+def scale_parts(
+    codec, ids: np.ndarray, pad_id: int, start: int, stop: int, progress: Progress | None = None,
+    should_stop: ShouldStop | None = None,
+) -> list[np.ndarray]:
+    """Σ mean² [D] float64 of each ENCODE_BATCH block of chunks start..stop, encoding block by block.
+
+    `start` is a multiple of ENCODE_BATCH and `ids` the range's own token ids
+    (token_ids[start*K : stop*K], the text's last chunk ragged), so each block is encoded exactly as
+    measure_scale encodes it: the parts of consecutive ranges, summed in order by LatentScale.of_parts,
+    are measure_scale's numbers bit for bit. This is how a cluster's workers share the planning pass."""
+    codec = opened(codec)
+    if start % ENCODE_BATCH or stop < start:
+        raise SettingsError(f"a planning range must start at a multiple of {ENCODE_BATCH} chunks, not {start}..{stop}.")
+    k = codec.chunk_size
+    ids = np.asarray(ids)
+    parts = []
+    for a in range(start, stop, ENCODE_BATCH):
         if should_stop is not None and should_stop():
             raise SweepCancelled()
-        mean = codec.encode(chunks.ids(start, start + ENCODE_BATCH))[0].float()
-        part = mean.double().square().sum(0).numpy()
-        sumsq = part if sumsq is None else sumsq + part
+        b = min(a + ENCODE_BATCH, stop)
+        flat = ids[(a - start) * k : (b - start) * k]
+        block = np.full((b - a) * k, pad_id, dtype=np.int64)
+        block[: len(flat)] = flat
+        mean = codec.encode(torch.from_numpy(block.reshape(b - a, k)))[0].float()
+        parts.append(mean.double().square().sum(0).numpy())
         if progress is not None:
-            progress(min(start + ENCODE_BATCH, n), n)
-    return LatentScale(sumsq, n)
+            progress(b - start, stop - start)
+    return parts
 
 
 @dataclass(frozen=True)

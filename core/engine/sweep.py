@@ -15,7 +15,9 @@ A sweep is a sum over chunk ranges. Three steps, all NumPy-only and picklable in
 
 - `plan_sweep` validates the settings and measures all that needs the whole text: the
   frequency bucket of each token type, and for data-scale noise the text's r (one encoding
-  pass, block by block, keeping no latent). A SweepPlan is O(vocabulary + latent dim).
+  pass, block by block, keeping no latent). A SweepPlan is O(vocabulary + latent dim). That pass
+  shards too: `scale_parts` (core.engine.noise) over ENCODE_BATCH-aligned ranges, the parts added
+  in order by `LatentScale.of_parts`, then `plan_sweep(..., scale=)`: the same plan bit for bit.
 - `sweep_shard` sweeps chunks start..stop. `start` must be a multiple of NOISE_BLOCK and `stop`
   one too or the text's last chunk, so draw_eps gives the noise of the whole-text sweep.
   `ids` is the whole Chunks or just token_ids[start*K : stop*K]. The shard encodes its own
@@ -461,11 +463,16 @@ class SweepPlan:
     def shard_ranges(self, shards: int) -> list[tuple[int, int]]:
         """About `shards` contiguous (start_chunk, stop_chunk) ranges covering the text, each a whole
         number of the settings' batches (so every decode batch is the one-process sweep's)."""
-        batch = self.settings.batch_chunks
-        batches = -(-self.n_chunks // batch)
-        shards = max(1, min(int(shards), batches))
-        edges = [round(i * batches / shards) * batch for i in range(shards + 1)]
-        return [(a, min(b, self.n_chunks)) for a, b in zip(edges, edges[1:]) if a < min(b, self.n_chunks)]
+        return chunk_ranges(self.n_chunks, self.settings.batch_chunks, shards)
+
+
+def chunk_ranges(n_chunks: int, unit: int, parts: int) -> list[tuple[int, int]]:
+    """About `parts` contiguous (start, stop) ranges covering chunks 0..n_chunks, each a whole number of `unit` chunks
+    (the last one ragged)."""
+    units = -(-n_chunks // unit)
+    parts = max(1, min(int(parts), units))
+    edges = [round(i * units / parts) * unit for i in range(parts + 1)]
+    return [(a, min(b, n_chunks)) for a, b in zip(edges, edges[1:]) if a < min(b, n_chunks)]
 
 
 @dataclass
@@ -497,13 +504,15 @@ def plan_sweep(
     encoded: Encoded | None = None,
     should_stop: ShouldStop | None = None,
     progress: Progress | None = None,
+    scale: LatentScale | None = None,
 ) -> SweepPlan:
     """Validate the settings and measure what needs the whole text. Encodes the text once, block by
-    block and keeping no latent, only when the noise model needs the data scale r and `encoded` is not given."""
+    block and keeping no latent, only when the noise model needs the data scale r and neither `encoded`
+    nor `scale` (the text's LatentScale, measured elsewhere: a cluster's workers, by scale_parts) is given."""
     codec = opened(codec)
     settings = settings.validated(codec)
-    if chunks.chunk_size != codec.chunk_size:
-        raise SettingsError(f"the text was cut into chunks of {chunks.chunk_size}, but {codec.name} takes {codec.chunk_size}.")
+    if plan_needs_scale(codec, chunks, settings, encoded) and scale is not None and scale.chunks != chunks.num_chunks:
+        raise SettingsError(f"the latent scale given was measured over {scale.chunks} chunks, but the text has {chunks.num_chunks}.")
     ids = chunks.token_ids.astype(np.int64, copy=False)
     counts = np.bincount(ids, minlength=codec.vocab_size)
     bucket_of_type = (np.searchsorted(np.asarray(FREQUENCY_EDGES), counts, side="right") - 1).astype(np.int8)
@@ -512,7 +521,8 @@ def plan_sweep(
             raise SettingsError(f"the latents given hold {encoded.num_chunks} chunks, but the text has {chunks.num_chunks}.")
         scale = encoded.scale
     elif settings.noise == "data-scale":
-        scale = measure_scale(codec, chunks, progress=progress, should_stop=should_stop)
+        if scale is None:
+            scale = measure_scale(codec, chunks, progress=progress, should_stop=should_stop)
     else:
         scale = None
     return SweepPlan(
@@ -522,6 +532,15 @@ def plan_sweep(
         data_scale=None if scale is None else (encoded.rms_per_dim if encoded is not None else scale.rms_per_dim).numpy(),
         latent_rms=None if scale is None else scale.latent_rms,
     )
+
+
+def plan_needs_scale(codec, chunks: Chunks, settings: SweepSettings, encoded: Encoded | None = None) -> bool:
+    """Validate as plan_sweep does; True when its plan must measure the text's latent scale (an encoding pass)."""
+    codec = opened(codec)
+    settings = settings.validated(codec)
+    if chunks.chunk_size != codec.chunk_size:
+        raise SettingsError(f"the text was cut into chunks of {chunks.chunk_size}, but {codec.name} takes {codec.chunk_size}.")
+    return settings.noise == "data-scale" and encoded is None
 
 
 class _Range:
