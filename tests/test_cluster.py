@@ -214,6 +214,11 @@ def test_a_local_cluster_has_one_thread_per_process_and_is_shut_down_afterwards(
 
     with cluster_client(Where(workers=1)) as client:
         assert list(client.nthreads().values()) == [1]
+        # the workers of a local cluster run without Dask's sampling profiler (its config key, from
+        # distributed's documented configuration)
+        import dask
+
+        assert list(client.run(lambda: dask.config.get("distributed.worker.profile.enabled")).values()) == [False]
         local = client.cluster
     assert local.status.name == "closed" and client.status == "closed"
 
