@@ -94,7 +94,7 @@ class CompareTextView(QFrame):
             self.pane_titles.append(title)
             self.texts.append(text)
         for side in range(2):
-            self.texts[side].verticalScrollBar().valueChanged.connect(lambda _v, s=side: self._sync_scroll(s))
+            self.texts[side].scrolled.connect(lambda s=side: self._sync_scroll(s))
         bl.addWidget(panes, 1)
 
     # ---- what to show --------------------------------------------------------------------
@@ -151,8 +151,7 @@ class CompareTextView(QFrame):
         names = (pair.name_a, pair.name_b)
         for side, pane in enumerate((view.a, view.b)):
             widget = self.texts[side]
-            bar = widget.verticalScrollBar()
-            fraction = bar.value() / bar.maximum() if bar.maximum() > 0 else 0.0
+            fraction = widget.scroll_fraction()
             widget.set_content(pane.text, pane.spans)
             widget.paint_levels(pane.levels, formats)
             role = "A" if side == 0 else "B"
@@ -162,7 +161,7 @@ class CompareTextView(QFrame):
                 f"{row.sigma:.4g} (repeat 0): {pane.wrong:,} of {len(pane.correct):,} tokens wrong</span>"
             )
             self._syncing_scroll = True
-            widget.verticalScrollBar().setValue(int(round(fraction * widget.verticalScrollBar().maximum())))
+            widget.set_scroll_fraction(fraction)
             self._syncing_scroll = False
         units = UNIT_PLURAL[pair.unit]
         self.legend_a.setText(
@@ -207,9 +206,6 @@ class CompareTextView(QFrame):
     def _sync_scroll(self, side: int) -> None:
         if self._syncing_scroll:
             return
-        source, target = self.texts[side].verticalScrollBar(), self.texts[1 - side].verticalScrollBar()
-        if source.maximum() <= 0:
-            return
         self._syncing_scroll = True
-        target.setValue(int(round(source.value() / source.maximum() * target.maximum())))
+        self.texts[1 - side].set_scroll_fraction(self.texts[side].scroll_fraction())
         self._syncing_scroll = False

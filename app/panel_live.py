@@ -27,7 +27,7 @@ from core.engine.sweep import DEFAULT_NOISE
 from core.analyses.live import LivePerturbation
 from core.engine.text import Chunks
 from core.codecs.tokenizer import token_display
-from core.analyses.views import LiveWindow, decoded_layout, perturb_on_screen_first
+from core.analyses.views import LiveWindow, decoded_pieces, perturb_on_screen_first
 
 RELATIVE_MAX = 2.0
 TOP_K = 5  # alternatives shown when hovering a token (core.analyses.views.perturb_window's default)
@@ -320,7 +320,7 @@ class LivePanel(QWidget):
         if path != self.workbench.current:
             return
         entry = self.workbench.entry()
-        if entry is not None and entry.ready and self.shown_key != self._key() and self.original.toPlainText() != entry.chunks.text:
+        if entry is not None and entry.ready and self.shown_key != self._key() and self.original.pieces.text != entry.chunks.text:
             self._entry_switched()
 
     def _show_window(self, window: LiveWindow, gen: int) -> None:
@@ -352,13 +352,13 @@ class LivePanel(QWidget):
         anchor = self.original.first_visible_token()
         self.shown = {"predicted": predicted, "correct": correct, "top_ids": top_ids, "top_probs": top_probs}
         self.shown_key = self._key()
-        layout = decoded_layout(entry.codec, chunks, predicted, correct)
+        pieces = decoded_pieces(entry.codec, chunks, predicted, correct)  # laid out a window at a time, by the pane
         wrong = np.flatnonzero(~correct)
         if token_range is not None:  # the on-screen part first: mark only there, the rest follows
             wrong = wrong[(wrong >= token_range[0]) & (wrong < token_range[1])]
         marked = wrong[:MAX_MARKED]
         self._syncing = True
-        self.decoded.set_content(layout.text, layout.spans)
+        self.decoded.set_pieces(pieces, at_token=anchor)
         self.decoded.mark(marked, wrong_decoded_format())
         self.original.mark(marked, wrong_original_format())
         self.decoded.scroll_to_token(anchor)

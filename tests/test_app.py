@@ -10,8 +10,7 @@ os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 
 import numpy as np
 import pytest
-from PySide6.QtCore import QPoint, QPointF, Qt
-from PySide6.QtGui import QTextCursor
+from PySide6.QtCore import QPointF, Qt
 
 pytest.importorskip("pytestqt")
 
@@ -55,7 +54,7 @@ def test_opens_with_the_samples_and_the_demo_text(qtbot, window):
     names = sorted(e.name for e in window.workbench.entries.values())
     assert names == sorted(p.stem for p in sample_paths())
     entry = window.workbench.entry()
-    assert window.live.original.toPlainText() == entry.chunks.text
+    assert window.live.original.shown_text() == entry.chunks.text
     assert window.workbench.text_source == "demo_text.txt"
     details = window.models.details.toPlainText()
     assert entry.codec.sha256[:16] in details and str(entry.codec.latent_dim) in details
@@ -103,7 +102,7 @@ def test_slider_move_updates_the_decoded_view(qtbot, window):
     wait_ready(qtbot, window)
     window.show_view("live")
     entry = window.workbench.entry()
-    before = window.live.decoded.toPlainText()
+    before = window.live.decoded.shown_text()
     with qtbot.waitSignal(window.live.result_ready, timeout=WAIT, check_params_cb=lambda r: abs(r.sigma - 1.5) < 1e-9) as blocker:
         window.live.slider.setValue(1.5)
     result = blocker.args[0]
@@ -112,7 +111,7 @@ def test_slider_move_updates_the_decoded_view(qtbot, window):
     np.testing.assert_array_equal(result.predicted, reference.predicted)
     assert result.chunk_exact_rate == pytest.approx(reference.chunk_exact_rate)
     assert result.token_accuracy < 1.0, "σ 1.5 of the data scale should break some tokens"
-    assert window.live.decoded.toPlainText() != before
+    assert window.live.decoded.shown_text() != before
     assert window.live.decoded.marked_count == window.live.original.marked_count == min(int((~result.correct).sum()), 4000)
     assert window.live.accuracy_value.text().startswith(f"{result.token_accuracy * 100:.2f}")
     tip = window.live._tooltip(int(result.wrong_indices()[0]))
@@ -172,12 +171,7 @@ def test_clicking_a_token_shows_its_curve(qtbot, window):
     qtbot.waitUntil(lambda: window.tokens.result is result, timeout=WAIT)
     text = window.tokens.text
     index = 40
-    span = text._cursor_for(index)
-    start, end = QTextCursor(span), QTextCursor(span)
-    start.setPosition(span.selectionStart())
-    end.setPosition(span.selectionStart() + 1)  # the token's first character, wherever its line wraps
-    left, right = text.cursorRect(start), text.cursorRect(end)
-    middle = QPoint((left.x() + right.x()) // 2, left.center().y())
+    middle = text.point_of_token(index)
     with qtbot.waitSignal(window.tokens.token_shown, timeout=5000, check_params_cb=lambda i: i == index):
         qtbot.mouseClick(text.viewport(), Qt.MouseButton.LeftButton, pos=middle)
     curves = [i for i in window.tokens.token_plot.getPlotItem().listDataItems()]

@@ -158,8 +158,10 @@ def test_side_by_side_marks_where_the_models_differ(compare_panel, two_codecs, q
     view = compare_panel.view
     for mark in (ONLY_A, ONLY_B):
         token = int(np.flatnonzero(view.a.levels == mark)[0])
-        cursor = QTextCursor(compare_panel.texts[0].document())
-        cursor.setPosition(compare_panel.texts[0].doc_pos(int(view.a.spans[token, 0])) + 1)  # format of the char before
+        pane = compare_panel.texts[0]
+        pane.scroll_to_token(token)
+        cursor = QTextCursor(pane.document())
+        cursor.setPosition(pane.token_document_range(token)[0] + 1)  # format of the char before
         assert cursor.charFormat().background().color() == QColor(WASH[mark])
     assert "only A right" in compare_panel.legend_a.text() and "only B right" in compare_panel.legend_b.text()
 

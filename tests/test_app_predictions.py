@@ -39,7 +39,7 @@ def test_view_shows_cores_numbers_and_the_wrong_tokens(qtbot, window, tmp_path):
     assert panel.boxes["sigma"][0].text() == f"{s['effective_sigma']:.3g}"
     assert panel.boxes["accuracy"][0].text() == f"{100 * s['decoded_accuracy']:.2f} %"
     assert panel.verdict.text().lower() == panel.result.verdict.lower()
-    assert panel.text.toPlainText() == panel.result.chunks.text
+    assert panel.text.shown_text() == panel.result.chunks.text
     assert (wrong_levels(panel.result) > 0).any()  # there is something to colour
     assert window.workbench.entry().name == "tolerant"
 

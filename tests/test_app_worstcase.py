@@ -26,7 +26,7 @@ def test_the_worst_case_view_shows_cores_numbers_and_drops_stale_ones(window, qt
     assert panel.table.rowCount() == len(rows) > 0
     shown = float(panel.table.item(0, 2).text())
     assert shown == pytest.approx(min(r.relative_radius for r in rows), rel=1e-2)  # sorted by radius, relative units first
-    assert "verified" in panel.summary.text() and panel.text.toPlainText().startswith(result.chunks.text[:20])
+    assert "verified" in panel.summary.text() and panel.text.shown_text().startswith(result.chunks.text[:20])
 
     panel.units.setCurrentIndex(1)  # absolute units: the same result, redrawn
     assert panel.result is result

@@ -232,6 +232,9 @@ def token_layout(text: str, spans: np.ndarray, predicted: np.ndarray, correct: n
     n = len(spans)
     if n == 0:
         return DecodedLayout("", np.zeros((0, 2), dtype=np.int64))
+    low, high = int(spans.min()), int(spans.max())
+    if low > 0 or high < len(text):  # only the characters these tokens cover are gathered
+        text, spans = text[low:high], spans - low
     wrong = ~np.asarray(correct, dtype=bool)
     piece_ids, which = np.unique(np.asarray(predicted, dtype=np.int64)[wrong], return_inverse=True)
     pieces = [display(int(t)) for t in piece_ids.tolist()]
@@ -253,6 +256,71 @@ def decoded_layout(codec, chunks: Chunks, predicted: np.ndarray, correct: np.nda
     """Text of tokens token_start..token_start+len(predicted) as decoded; right tokens keep their exact characters."""
     spans = chunks.spans[token_start : token_start + len(predicted)]
     return token_layout(chunks.text, spans, predicted, correct, display_table(codec.tokenizer).__getitem__)
+
+
+class TextPieces:
+    """A text as token pieces, read a window of tokens at a time: what a text pane shows.
+
+    The text and the per-token arrays are held by reference (shared with the Chunks or
+    result they come from), so a pane over a big text holds no copy of it; `window` makes
+    only the characters of the tokens asked for."""
+
+    def __init__(self, text: str, spans: np.ndarray):
+        self.text = text
+        self.spans = np.asarray(spans, dtype=np.int64).reshape(-1, 2)
+
+    @property
+    def num_tokens(self) -> int:
+        return int(len(self.spans))
+
+    def window(self, start: int, stop: int) -> DecodedLayout:
+        """Tokens start..stop: their text (with the characters between them) and their spans in it.
+        The first window starts at the text's start, the last ends at its end."""
+        n = self.num_tokens
+        start, stop = max(0, start), min(n, stop)
+        if stop <= start:
+            return DecodedLayout(self.text if n == 0 else "", np.zeros((0, 2), dtype=np.int64))
+        low = 0 if start == 0 else int(self.spans[start, 0])
+        high = len(self.text) if stop == n else int(self.spans[stop - 1, 1])
+        high = max(high, low)
+        spans = np.clip(self.spans[start:stop], low, high) - low
+        return DecodedLayout(self.text[low:high], spans)
+
+    def whole(self) -> str:
+        return self.text
+
+    def line_start(self, token: int, reach: int = 2000) -> int:
+        """The first token of the line holding `token` if that line begins within `reach` characters, else `token`."""
+        if not 0 < token < self.num_tokens:
+            return token
+        at = int(self.spans[token, 0])
+        newline = self.text.rfind("\n", max(0, at - reach), at)
+        if newline < 0:
+            return token
+        return min(token, int(np.searchsorted(self.spans[:, 0], newline + 1, side="left")))
+
+
+class DecodedPieces(TextPieces):
+    """The text as decoded (token_layout's definition), made a window at a time: right tokens
+    keep their characters, wrong ones show the decoded piece. No whole-text layout is built."""
+
+    def __init__(self, text: str, spans: np.ndarray, predicted: np.ndarray, correct: np.ndarray,
+                 display: Callable[[int], str]):
+        super().__init__(text, spans)
+        self.predicted, self.correct, self.display = predicted, correct, display
+
+    def window(self, start: int, stop: int) -> DecodedLayout:
+        start, stop = max(0, start), min(self.num_tokens, stop)
+        return token_layout(self.text, self.spans[start:stop], self.predicted[start:stop], self.correct[start:stop],
+                            self.display)
+
+    def whole(self) -> str:
+        return token_layout(self.text, self.spans, self.predicted, self.correct, self.display).text
+
+
+def decoded_pieces(codec, chunks: Chunks, predicted: np.ndarray, correct: np.ndarray) -> DecodedPieces:
+    """The decoded text of a whole text, as pieces a pane shows a window at a time."""
+    return DecodedPieces(chunks.text, chunks.spans, predicted, correct, display_table(codec.tokenizer).__getitem__)
 
 
 def token_at(spans: np.ndarray, char_pos: int) -> int | None:

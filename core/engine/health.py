@@ -145,7 +145,8 @@ def latent_health(
             means[lo:hi] = mean[torch.from_numpy(first[lo:hi] - start)]
     scale = LatentScale(sumsq, n)
     variance = moments.variance().astype(np.float32)
-    half = nearest_distinct_half_distance(means, block=1024, should_stop=should_stop) if len(means) > 1 else torch.zeros(0)
+    # [256, 20k] float64 blocks: cdist makes a few of them at once (about 110 MB, not 350 MB at 1024)
+    half = nearest_distinct_half_distance(means, block=256, should_stop=should_stop) if len(means) > 1 else torch.zeros(0)
     half = half[torch.isfinite(half)]
     return LatentHealth(
         latent_dim=codec.latent_dim,
