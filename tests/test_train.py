@@ -169,6 +169,22 @@ def test_the_table_is_written_between_the_readme_markers_only(tmp_path, shared):
     readme.write_text("no markers\n", encoding="utf-8")
     with pytest.raises(ValueError, match="no table markers"):
         write_table_into_readme(tmp_path)
+    assert readme.read_text(encoding="utf-8") == "no markers\n"
+
+
+@pytest.mark.parametrize("case", ["missing folder", "no checkpoints", "no readme"])
+def test_the_table_command_says_in_one_sentence_what_is_wrong(tmp_path, case, capsys):
+    from core.cli import main
+
+    folder = tmp_path / "models"
+    if case != "missing folder":
+        folder.mkdir()
+    if case == "no readme":
+        (folder / "x.safetensors").write_bytes(b"")
+    args = ["train", "--table", str(folder)] + (["--readme"] if case == "no readme" else [])
+    assert main(args) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("chunkscope: ") and err.count("\n") == 1 and "Traceback" not in err
 
 
 def test_outside_texts_are_measured_only_when_present(tmp_path, monkeypatch, shared):

@@ -34,6 +34,7 @@ import torch
 from torch import nn
 
 from core.codecs.checkpoint import Codec, save_codec
+from core.errors import SettingsError
 from core.training.corpus import CHARACTER_TABLE_REPEATS, Corpus, build_corpus, character_table
 from core.codecs.model import ChunkMLP, build_model
 from core.engine.text import Chunks, chunk_text, demo_text, text_sha256
@@ -469,14 +470,22 @@ def card_table(folder: str | Path) -> str:
     levels = " / ".join(level_percent(level).replace(" %", "") for level in TOLERANCE_LEVELS) + " %"
     keys = [level_key(level) for level in TOLERANCE_LEVELS]
 
+    paths = sorted(Path(folder).glob("*.safetensors"))
+    if not Path(folder).is_dir():
+        raise SettingsError(f"{folder} is not a folder.")
+    if not paths:
+        raise SettingsError(f"{folder} holds no .safetensors checkpoints to tabulate.")
     rows = [
         "| model | training | latent / width / depth / embed | steps × batch | acc. σ=0 held-out | acc. σ=0 demo "
         f"| tolerance isotropic {levels} | tolerance data-scale {levels} | latent RMS | train time | file |",
         "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |",
     ]
     outside: list[str] = []
-    for path in sorted(Path(folder).glob("*.safetensors")):
+    for path in paths:
         c = load_codec(path)
+        if not isinstance(c.card.get("recipe"), dict) or not isinstance(c.card.get("measured"), dict):
+            raise SettingsError(f"{path}'s card has no recipe or no measured numbers (not a sample recipe's "
+                                "checkpoint, or trained with --no-measure).")
         r, m = c.card["recipe"], c.card["measured"]
         if r["variational"]:
             how = (f"VAE, KL weight {r['kl_weight']:g}, free bits {r['free_bits']:g} nats/dim, latent dropout "
@@ -514,12 +523,16 @@ TABLE_END = "<!-- end of the written table -->"
 def write_table_into_readme(folder: str | Path) -> Path:
     """Replace the block between TABLE_BEGIN and TABLE_END in FOLDER/README.md with card_table(FOLDER)."""
     readme = Path(folder) / "README.md"
-    text = readme.read_text(encoding="utf-8")
+    try:
+        text = readme.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise SettingsError(f"{readme} cannot be read as UTF-8 text to write the table into ({exc.__class__.__name__}).") from None
     start, end = text.find(TABLE_BEGIN), text.find(TABLE_END)
     if start < 0 or end < start:
-        raise ValueError(f"{readme} has no table markers ({TABLE_BEGIN!r} … {TABLE_END!r})")
+        raise SettingsError(f"{readme} has no table markers: add the line {TABLE_BEGIN} and, below it, {TABLE_END}.")
+    table = card_table(folder)  # built before the file is touched, so a failure leaves it as it was
     head = text[: start + len(TABLE_BEGIN)]
-    readme.write_text(head + "\n\n" + card_table(folder) + "\n\n" + text[end:], encoding="utf-8")
+    readme.write_text(head + "\n\n" + table + "\n\n" + text[end:], encoding="utf-8")
     return readme
 
 
