@@ -179,6 +179,7 @@ def test_tolerant_takes_more_data_scale_noise_than_plain_on_the_demo_text():
     assert tolerant.sigma >= 2.8 * plain.sigma
 
 
+@lru_cache(maxsize=1)
 def outside_prose() -> list[tuple[dict, Chunks]]:
     """Each outside text a card was measured on that this machine has, byte for byte (by its sha256)."""
     from core.training.train import outside_texts

@@ -506,22 +506,17 @@ def _worst_case_task(ticket: CodecTicket, ids: np.ndarray, n_tokens: int, pad_id
     encode does (`ids` are those blocks' token ids, from chunk `first`), then search start..stop."""
     from core.analyses.worstcase import worst_case_piece
     from core.deferred import torch
-    from core.engine.noise import ENCODE_BATCH
+    from core.engine.noise import ENCODE_BATCH, encoded_blocks
+    from core.engine.text import real_mask
 
     if torch.get_num_threads() != 1:
         torch.set_num_threads(1)
     codec = open_on_worker(ticket)
     k = codec.chunk_size
     last = min(-(-stop // ENCODE_BATCH) * ENCODE_BATCH, -(-n_tokens // k))
-    means = []
-    for a in range(first, last, ENCODE_BATCH):
-        b = min(a + ENCODE_BATCH, last)
-        flat = ids[(a - first) * k : (b - first) * k]
-        block = np.full((b - a) * k, pad_id, dtype=np.int64)
-        block[: len(flat)] = flat
-        means.append(codec.encode(torch.from_numpy(block.reshape(b - a, k)))[0].float())
+    means = [mean for _, _, mean in encoded_blocks(codec, ids, pad_id, first, last)]
     mean = torch.cat(means)[start - first : stop - first]
-    mask = torch.from_numpy((np.arange(start * k, stop * k) < n_tokens).reshape(stop - start, k))
+    mask = real_mask(start, stop, k, n_tokens)
     return worst_case_piece(codec, mean, mask, torch.from_numpy(data_scale), start, stop, settings)
 
 

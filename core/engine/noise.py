@@ -128,24 +128,30 @@ def scale_parts(
     (token_ids[start*K : stop*K], the text's last chunk ragged), so each block is encoded exactly as
     measure_scale encodes it: the parts of consecutive ranges, summed in order by LatentScale.of_parts,
     are measure_scale's numbers bit for bit. This is how a cluster's workers share the planning pass."""
-    codec = opened(codec)
     if start % ENCODE_BATCH or stop < start:
         raise SettingsError(f"a planning range must start at a multiple of {ENCODE_BATCH} chunks, not {start}..{stop}.")
-    k = codec.chunk_size
-    ids = np.asarray(ids)
     parts = []
-    for a in range(start, stop, ENCODE_BATCH):
-        if should_stop is not None and should_stop():
-            raise SweepCancelled()
-        b = min(a + ENCODE_BATCH, stop)
-        flat = ids[(a - start) * k : (b - start) * k]
-        block = np.full((b - a) * k, pad_id, dtype=np.int64)
-        block[: len(flat)] = flat
-        mean = codec.encode(torch.from_numpy(block.reshape(b - a, k)))[0].float()
+    for _, b, mean in encoded_blocks(codec, ids, pad_id, start, stop, should_stop):
         parts.append(mean.double().square().sum(0).numpy())
         if progress is not None:
             progress(b - start, stop - start)
     return parts
+
+
+def encoded_blocks(codec, ids: np.ndarray, pad_id: int, start: int, stop: int, should_stop: ShouldStop | None = None):
+    """(a, b, mean float32 [b - a, D]) of each ENCODE_BATCH block a..b of chunks start..stop, `ids` being the
+    range's own token ids from chunk `start` (a multiple of ENCODE_BATCH): each block is encoded exactly as an
+    encoding pass over the whole text encodes it."""
+    from core.engine.text import padded_ids
+
+    codec = opened(codec)
+    k = codec.chunk_size
+    ids = np.asarray(ids)
+    for a in range(start, stop, ENCODE_BATCH):
+        if should_stop is not None and should_stop():
+            raise SweepCancelled()
+        b = min(a + ENCODE_BATCH, stop)
+        yield a, b, codec.encode(padded_ids(ids[(a - start) * k : (b - start) * k], b - a, k, pad_id))[0].float()
 
 
 @dataclass(frozen=True)

@@ -57,6 +57,18 @@ def demo_text() -> str:
     return load_text(DEMO_TEXT_PATH)
 
 
+
+def padded_ids(flat: np.ndarray, n: int, k: int, pad_id: int) -> torch.Tensor:
+    """LongTensor[n, K] of n chunks' token ids `flat` (the ragged last chunk's tail filled with pad_id)."""
+    out = np.full(n * k, pad_id, dtype=np.int64)
+    out[: len(flat)] = flat
+    return torch.from_numpy(out.reshape(n, k))
+
+
+def real_mask(start: int, stop: int, k: int, num_tokens: int) -> torch.Tensor:
+    """BoolTensor[stop - start, K] of chunks start..stop of a text of num_tokens: True for real tokens."""
+    return torch.from_numpy((np.arange(start * k, stop * k) < num_tokens).reshape(stop - start, k))
+
 @dataclass
 class Chunks:
     """A text cut into K-token chunks. Token t sits in chunk t // K at position t % K."""
@@ -80,18 +92,12 @@ class Chunks:
         """LongTensor[n, K] of chunks start..stop, the ragged last one padded."""
         stop = self.num_chunks if stop is None else min(stop, self.num_chunks)
         k = self.chunk_size
-        flat = self.token_ids[start * k : stop * k]
-        n = stop - start
-        out = np.full(n * k, self.pad_id, dtype=np.int64)
-        out[: len(flat)] = flat
-        return torch.from_numpy(out.reshape(n, k))
+        return padded_ids(self.token_ids[start * k : stop * k], stop - start, k, self.pad_id)
 
     def mask(self, start: int = 0, stop: int | None = None) -> torch.Tensor:
         """BoolTensor[n, K]: True for real tokens, False for padding."""
         stop = self.num_chunks if stop is None else min(stop, self.num_chunks)
-        k = self.chunk_size
-        real = np.arange(start * k, stop * k) < self.num_tokens
-        return torch.from_numpy(real.reshape(stop - start, k))
+        return real_mask(start, stop, self.chunk_size, self.num_tokens)
 
 
 PIECE_CHARS = 32_000  # a long text is tokenized about this many characters at a time: faster than whole,
